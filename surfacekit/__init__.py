@@ -1,0 +1,75 @@
+"""surfacekit: analysis of deformable anatomical surfaces.
+
+For research use only; not for diagnosis or treatment decisions.
+
+Public names are imported lazily, so ``import surfacekit`` stays cheap and a user
+who needs one stage never pays for the others.
+"""
+from __future__ import annotations
+
+import importlib
+import logging
+
+from .surface import Surface, SurfaceError
+
+__version__ = "0.1.0"
+
+logging.getLogger("surfacekit").addHandler(logging.NullHandler())
+
+# public name -> module that defines it (relative to this package)
+_LAZY = {
+    # io
+    "load": "io", "save": "io", "load_fields": "io", "save_fields": "io",
+    "from_segmentation": "segmentation",
+    # preparation
+    "prepare": "prepare", "quality_report": "prepare", "QualityReport": "prepare",
+    "PrepareReport": "prepare",
+    # operators
+    "laplacian": "operators", "eigenbasis": "operators", "Eigenbasis": "operators",
+    "gradient": "operators", "divergence": "operators", "mass_matrix": "operators",
+    "cotangent_laplacian": "operators", "point_cloud_laplacian": "operators",
+    "EigenSolverWarning": "operators",
+    # descriptors
+    "heat_kernel_signature": "descriptors", "scale_invariant_hks": "descriptors",
+    "wave_kernel_signature": "descriptors", "shape_dna": "descriptors",
+    "shape_dna_distance": "descriptors", "mean_curvature": "descriptors",
+    "gaussian_curvature": "descriptors",
+    # geodesics
+    "geodesic_distance": "geodesics", "farthest_point_sampling": "geodesics",
+    "geodesic_distance_matrix": "geodesics", "geodesic_polar_coordinates": "geodesics",
+    "patch_descriptors": "geodesics", "GeodesicSolver": "geodesics",
+    # correspondence
+    "match": "correspondence", "Correspondence": "correspondence",
+    "MatchOptions": "correspondence", "map_quality": "correspondence",
+    "geodesic_error": "correspondence",
+    # analysis
+    "rigid_transform": "analysis", "similarity_transform": "analysis",
+    "measure_change": "analysis", "ChangeReport": "analysis",
+    "transfer_labels": "analysis", "generalized_procrustes": "analysis",
+    "ShapeModel": "analysis", "shape_model": "analysis",
+    "vertexwise_group_test": "analysis", "GroupTestResult": "analysis",
+    # batch
+    "run_cohort": "batch",
+    # report
+    "write_report": "report",
+}
+
+_SUBMODULES = {"synthetic", "io", "operators", "descriptors", "geodesics", "prepare",
+               "segmentation", "correspondence", "analysis", "batch", "report", "cli"}
+
+__all__ = ["Surface", "SurfaceError", "__version__", *sorted(_LAZY)]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        module = importlib.import_module(f".{_LAZY[name]}", __name__)
+        value = getattr(module, name)
+        globals()[name] = value
+        return value
+    if name in _SUBMODULES:
+        return importlib.import_module(f".{name}", __name__)
+    raise AttributeError(f"module 'surfacekit' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY) | _SUBMODULES)
