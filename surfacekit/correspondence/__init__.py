@@ -1,0 +1,20 @@
+"""Dense correspondence between surfaces: functional maps, ZoomOut, extrinsic cues, map quality.
+
+For research use only; not for diagnosis or treatment decisions.
+"""
+from __future__ import annotations
+
+from .options import MatchOptions
+from .result import Correspondence, save_landmarks
+from .solver import match
+
+__all__ = ["Correspondence", "MatchOptions", "match", "save_landmarks", "map_quality", "geodesic_error"]
+
+
+def __getattr__(name: str):
+    # quality measures pull in the geodesic solver; import them on first use
+    if name in ("map_quality", "geodesic_error"):
+        from . import quality
+
+        return getattr(quality, name)
+    raise AttributeError(f"module 'surfacekit.correspondence' has no attribute {name!r}")

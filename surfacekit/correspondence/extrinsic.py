@@ -1,0 +1,137 @@
+"""Extrinsic cues: shape normalisation, candidate poses, rigid fits and ICP."""
+from __future__ import annotations
+
+from itertools import permutations, product
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from ..surface import Surface
+
+
+def normalized_coordinates(s: Surface) -> tuple[np.ndarray, np.ndarray, float]:
+    """Vertices centred at the area-weighted centroid and scaled to unit area.
+
+    Returns ``(points (n, 3) dimensionless, centroid (3,) mm, scale 1/mm)`` with
+    ``points = (vertices - centroid) * scale`` and ``scale = 1/sqrt(area)``.
+    """
+    c = s.centroid
+    scale = 1.0 / np.sqrt(s.area)
+    return (s.vertices - c) * scale, c, scale
+
+
+def principal_frame(points: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Proper rotation (3, 3) whose columns are the principal axes (largest variance first).
+
+    points (n, 3) centred, weights (n,) e.g. vertex areas; ``det = +1``.
+    """
+    w = weights / weights.sum()
+    cov = (points * w[:, None]).T @ points
+    vals, vecs = np.linalg.eigh(cov)
+    vecs = vecs[:, ::-1]
+    if np.linalg.det(vecs) < 0:
+        vecs[:, 2] *= -1
+    return vecs
+
+
+def proper_signed_permutations() -> np.ndarray:
+    """The 24 rotations of the cube (signed permutation matrices with det +1), (24, 3, 3)."""
+    out = []
+    for perm in permutations(range(3)):
+        for signs in product((1.0, -1.0), repeat=3):
+            P = np.zeros((3, 3))
+            P[np.arange(3), perm] = signs
+            if np.linalg.det(P) > 0:
+                out.append(P)
+    return np.array(out)
+
+
+def rotation_angle(R: np.ndarray) -> float:
+    """Angle (radians) of a rotation matrix."""
+    return float(np.arccos(np.clip((np.trace(R) - 1) / 2, -1.0, 1.0)))
+
+
+def candidate_rotations(src: np.ndarray, src_w: np.ndarray, tgt: np.ndarray, tgt_w: np.ndarray,
+                        same_orientation: bool | None) -> np.ndarray:
+    """Candidate rotations taking normalised source points towards the target, (r, 3, 3).
+
+    Principal axes of both shapes are paired in every proper way (the 24 rotations
+    of the cube between the two principal frames: all sign choices and, for
+    near-equal axes, all orderings); reflections are excluded because they would
+    give mirror maps.  The identity is added unless ``same_orientation`` is False;
+    with ``same_orientation=True`` only rotations within 60 degrees of the identity
+    are kept (scans share the scanner's orientation).
+    """
+    Es, Et = principal_frame(src, src_w), principal_frame(tgt, tgt_w)
+    cands = [Et @ P @ Es.T for P in proper_signed_permutations()]
+    if same_orientation is not False:
+        cands.insert(0, np.eye(3))
+    if same_orientation:
+        cands = [R for R in cands if rotation_angle(R) <= np.deg2rad(60.0)]
+    return np.array(cands)
+
+
+def kabsch(a: np.ndarray, b: np.ndarray, w: np.ndarray | None = None,
+           scaling: bool = False) -> tuple[np.ndarray, np.ndarray, float]:
+    """Least-squares rotation R, translation t (and scale) with ``s R a + t ≈ b``.
+
+    Kabsch (Acta Cryst. A 1976); with ``scaling`` the similarity of Umeyama (IEEE
+    TPAMI 1991).  a, b (n, 3); w (n,) optional weights.  Returns ``(R (3,3), t (3,), s)``;
+    proper rotations only (det +1).
+    """
+    w = np.ones(len(a)) if w is None else np.asarray(w, float)
+    w = w / w.sum()
+    ca, cb = w @ a, w @ b
+    A, B = a - ca, b - cb
+    H = (A * w[:, None]).T @ B
+    U, S, Vt = np.linalg.svd(H)
+    d = np.sign(np.linalg.det(Vt.T @ U.T)) or 1.0
+    D = np.diag([1.0, 1.0, d])
+    R = Vt.T @ D @ U.T
+    s = float(np.trace(np.diag(S) @ D) / max(w @ np.sum(A * A, axis=1), 1e-300)) if scaling else 1.0
+    t = cb - s * R @ ca
+    return R, t, s
+
+
+def icp(src: np.ndarray, tgt: np.ndarray, R: np.ndarray, *, iterations: int = 15,
+        tgt_tree: cKDTree | None = None, scaling: bool = False):
+    """Symmetric point-to-point ICP (Besl & McKay, IEEE TPAMI 1992) from an initial rotation.
+
+    Closest points are taken in both directions each iteration, so that a partial
+    overlap cannot shrink onto one end.  src (p, 3), tgt (q, 3) normalised
+    points.  Returns ``(R, t, s, rms)`` with rms the symmetric root-mean-square
+    closest-point distance after the last step (same units as the points).
+    """
+    tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
+    t = np.zeros(3)
+    s = 1.0
+    rms = np.inf
+    for _ in range(iterations):
+        moved = s * src @ R.T + t
+        d_st, j = tree_t.query(moved)
+        d_ts, i = cKDTree(moved).query(tgt)
+        a = np.concatenate([src, src[i]])
+        b = np.concatenate([tgt[j], tgt])
+        R, t, s = kabsch(a, b, scaling=scaling)
+        new = np.sqrt(0.5 * (np.mean(d_st**2) + np.mean(d_ts**2)))
+        if abs(rms - new) < 1e-6:
+            rms = new
+            break
+        rms = new
+    moved = s * src @ R.T + t
+    d_st, _ = tree_t.query(moved)
+    d_ts, _ = cKDTree(moved).query(tgt)
+    rms = float(np.sqrt(0.5 * (np.mean(d_st**2) + np.mean(d_ts**2))))
+    return R, t, s, rms
+
+
+def distinct_poses(poses: list, scores: np.ndarray, n_keep: int, min_angle_deg: float = 25.0) -> list:
+    """Indices of the best-scoring poses, skipping any within `min_angle_deg` of a kept one."""
+    keep: list[int] = []
+    for idx in np.argsort(scores):
+        R = poses[idx][0]
+        if all(rotation_angle(R @ poses[k][0].T) > np.deg2rad(min_angle_deg) for k in keep):
+            keep.append(int(idx))
+        if len(keep) >= n_keep:
+            break
+    return keep

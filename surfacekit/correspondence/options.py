@@ -1,0 +1,84 @@
+"""Options of :func:`surfacekit.match`."""
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+
+@dataclass
+class MatchOptions:
+    """Settings of the correspondence solver; the defaults suit organ surfaces of 1k–50k vertices.
+
+    Attributes
+    ----------
+    n_eigen : int, default 60
+        Laplace–Beltrami eigenpairs per surface; the final functional map is
+        n_eigen x n_eigen.  Eigenbases are cached on the surfaces.
+    n_samples : int, default 1500
+        Well-spread vertices per surface on which the candidates are refined; the
+        final map is extended to every vertex.
+    zoomout_start, zoomout_step : int, default 6, 3
+        First spectral size and increment of the ZoomOut refinement.
+    same_orientation : bool or None, default None
+        True: both scans share the scanner's orientation, so only poses within
+        60 degrees of the identity are tried.  False: arbitrary pose (the identity
+        gets no special treatment).  None: try the identity and all principal-axis
+        poses (works in both situations).
+    n_poses : int, default 4
+        Distinct rigid poses (after a coarse ICP) refined into full candidates.
+    coordinate_weight : float, default 1.5
+        Weight of the aligned, unit-area coordinates appended to the spectral
+        embedding during refinement (0 = purely intrinsic refinement).
+    coordinate_decay : float, default 0.3
+        Factor by which `coordinate_weight` shrinks from the first to the last
+        refinement step.
+    bijective : bool, default True
+        Estimate each functional map from both map directions.
+    intrinsic_candidate : bool, default True
+        Also build a candidate from descriptors alone (functional map with
+        Laplacian, descriptor-commutativity and orientation terms).
+    intrinsic_k : int, default 30
+        Size of the descriptor-based functional map.
+    icp_iterations : int, default 20
+    scaling : bool, default False
+        Let the pre-alignment rescale beyond the unit-area normalisation.
+    landmarks : tuple of (source_vertex, target_vertex) pairs, default ()
+        Known corresponding vertices; used as descriptors (heat diffusion from
+        each landmark) and to fix the pose when there are at least 3.
+    """
+
+    n_eigen: int = 60
+    n_samples: int = 1500
+    zoomout_start: int = 6
+    zoomout_step: int = 3
+    same_orientation: bool | None = None
+    n_poses: int = 4
+    coordinate_weight: float = 1.5
+    coordinate_decay: float = 0.3
+    bijective: bool = True
+    intrinsic_candidate: bool = True
+    intrinsic_k: int = 30
+    icp_iterations: int = 20
+    scaling: bool = False
+    landmarks: tuple = ()
+
+    def validate(self) -> "MatchOptions":
+        if self.n_eigen < 4:
+            raise ValueError(f"n_eigen must be >= 4, got {self.n_eigen}")
+        if self.n_samples < 50:
+            raise ValueError(f"n_samples must be >= 50, got {self.n_samples}")
+        if not 1 <= self.zoomout_start <= self.n_eigen:
+            raise ValueError(f"zoomout_start must be in [1, n_eigen], got {self.zoomout_start}")
+        if self.zoomout_step < 1:
+            raise ValueError(f"zoomout_step must be >= 1, got {self.zoomout_step}")
+        if self.n_poses < 1:
+            raise ValueError(f"n_poses must be >= 1, got {self.n_poses}")
+        if self.coordinate_weight < 0:
+            raise ValueError(f"coordinate_weight must be >= 0, got {self.coordinate_weight}")
+        if self.same_orientation not in (None, True, False):
+            raise ValueError(f"same_orientation must be None, True or False, got {self.same_orientation!r}")
+        return self
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["landmarks"] = [list(map(int, p)) for p in self.landmarks]
+        return d
