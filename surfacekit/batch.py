@@ -1,0 +1,260 @@
+"""Cohorts at scale: the per-subject pipeline over a manifest, locally or on a Dask cluster.
+
+For each subject of a cohort manifest (see :mod:`surfacekit.batch_manifest`):
+load the mesh or label volume -> ``sk.prepare`` -> Shape-DNA -> ``sk.match`` to
+the template -> ``sk.measure_change`` (fields per template vertex); results are
+written under ``output_dir/subjects/<id>/`` and marked done under a key derived
+from the input bytes, template, options and package version, so a re-run skips
+finished subjects and an interrupted run resumes.  Then the cohort tables are
+written in manifest order (``cohort_summary.csv``, ``cohort_fields.npz``,
+``group_test.csv``), byte-identical whatever the engine or completion order.
+
+Layout of ``output_dir``::
+
+    template/template.npz, template.ply, <key>.done
+    subjects/<id>/fields.npz, prepared.ply, row.json, timings.json, <key>.done
+    cohort_summary.csv  cohort_fields.npz  group_test.csv  run_summary.json
+
+For research use only; not for diagnosis or treatment decisions.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .batch_engines import engine_name, run_tasks
+from .batch_manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
+from .batch_subject import (
+    MARKER_SUFFIX,
+    STAGES,
+    SubjectTask,
+    load_input_surface,
+    prepare_surface,
+    read_finished,
+    save_npz_deterministic,
+    spectrum,
+    write_json,
+)
+from .batch_tables import write_fields_matrix, write_group_test, write_summary
+
+__all__ = ["CohortResult", "read_manifest", "run_cohort"]
+
+
+@dataclass
+class CohortResult:
+    """What a cohort run did.  Rows are in manifest order.
+
+    Attributes
+    ----------
+    output_dir : folder of the run
+    rows : list of dicts (subject, status ``ok``/``failed``, error, cached, values, timings)
+    n_computed, n_cached, n_failed : subjects computed in this run, reused from an
+        earlier run, and failed (failed subjects are retried by the next run)
+    wall_seconds : time of the whole run (s)
+    stage_seconds : time per stage summed over the subjects computed in this run (s)
+    peak_rss_mb : peak resident memory per worker process (MiB), keyed ``host:pid``
+    tables : paths of the cohort tables written
+    """
+
+    output_dir: Path
+    engine: str
+    rows: list[dict]
+    n_computed: int
+    n_cached: int
+    n_failed: int
+    wall_seconds: float
+    stage_seconds: dict = field(default_factory=dict)
+    peak_rss_mb: dict = field(default_factory=dict)
+    tables: dict = field(default_factory=dict)
+
+    @property
+    def n_subjects(self) -> int:
+        return len(self.rows)
+
+    @property
+    def failed(self) -> list[tuple[str, str]]:
+        """(subject, one-line error) for each failed subject, in manifest order."""
+        return [(r["subject"], r["error"]) for r in self.rows if r["status"] != "ok"]
+
+    @property
+    def subjects_per_minute(self) -> float:
+        return 60.0 * self.n_computed / self.wall_seconds if self.wall_seconds > 0 else 0.0
+
+    def summary(self) -> str:
+        """A few human-readable lines: counts, speed, time per stage, failures."""
+        lines = [(f"cohort: {self.n_subjects} subjects ({self.n_computed} computed, "
+                 f"{self.n_cached} reused, {self.n_failed} failed) on {self.engine} in "
+                 f"{self.wall_seconds:.1f} s ({self.subjects_per_minute:.1f} subjects/min)")]
+        if self.n_computed:
+            per = ", ".join(f"{s} {self.stage_seconds.get(s, 0.0) / self.n_computed:.2f}"
+                            for s in STAGES)
+            lines.append(f"mean time per computed subject (s): {per}")
+        if self.peak_rss_mb:
+            lines.append(f"peak memory per worker: {max(self.peak_rss_mb.values()):.0f} MiB "
+                         f"(max over {len(self.peak_rss_mb)} worker processes)")
+        for subject, error in self.failed[:20]:
+            lines.append(f"failed {subject}: {error}")
+        if self.n_failed > 20:
+            lines.append(f"... and {self.n_failed - 20} more failures (see cohort_summary.csv)")
+        lines.append(f"tables: {', '.join(str(p) for p in self.tables.values())}")
+        return "\n".join(lines)
+
+
+def _digest_or_marker(path: Path) -> str:
+    try:
+        return file_digest(path)
+    except OSError:  # missing/unreadable: the worker reports the error for this subject
+        return "unreadable"
+
+
+def _prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Path, str, int]:
+    """Prepare the template once (in this process) and store it exactly (NPZ, float64).
+
+    Bad template input raises (SurfaceError / ValueError): without a template no
+    subject can be processed.
+    """
+    from threadpoolctl import threadpool_limits
+
+    if not entry.path.is_file():
+        raise ValueError(f"template not found: {entry.path}")
+    key = cache_key(input_digest=file_digest(entry.path), label=entry.label, template_key="",
+                    options=options, version=__version__)
+    tdir = out / "template"
+    tfile = tdir / "template.npz"
+    if not ((tdir / f"{key}{MARKER_SUFFIX}").is_file() and tfile.is_file()):
+        import surfacekit as sk
+
+        tdir.mkdir(parents=True, exist_ok=True)
+        for stale in tdir.glob(f"*{MARKER_SUFFIX}"):
+            stale.unlink()
+        with threadpool_limits(limits=1):  # same arithmetic as in the pinned workers
+            template = prepare_surface(load_input_surface(entry.path, entry.label), options)
+            dna = spectrum(template, options)
+        save_npz_deterministic(tfile, {"vertices": template.vertices, "faces": template.faces,
+                                       "shape_dna": dna})
+        sk.save(template, tdir / "template.ply")
+        (tdir / f"{key}{MARKER_SUFFIX}").write_text(key + "\n")
+    with np.load(tfile, allow_pickle=False) as data:
+        n_template = int(data["vertices"].shape[0])
+    return tfile, key, n_template
+
+
+def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
+               scheduler: str | None = None, target_vertices: int | None = 5000,
+               n_eigenvalues: int = 50, n_permutations: int = 5000, seed: int = 0,
+               progress: bool = True, force: bool = False,
+               max_tasks_per_worker: int | None = None) -> CohortResult:
+    """Run the per-subject pipeline over a cohort manifest and write the cohort tables.
+
+    Parameters
+    ----------
+    manifest : path of the cohort CSV (``subject,path,label,group,role,age,sex``)
+    output_dir : folder for results (created); re-running on it reuses finished subjects
+    template : optional template surface path, overriding the manifest's template row
+    workers : 1 runs in this process; N > 1 uses N local processes ("spawn")
+    scheduler : address of a Dask scheduler (e.g. ``tcp://10.0.0.5:8786``); the
+        workers must see `output_dir` and the inputs at the same paths
+    target_vertices : vertex count every surface is resampled to by ``sk.prepare``
+    n_eigenvalues : length of the Shape-DNA spectrum
+    n_permutations : permutations of the vertex-wise group test
+    seed : seed of matching, change measures and the group test
+    progress : show a progress bar over subjects (stderr)
+    force : recompute every subject even when a finished result exists
+    max_tasks_per_worker : restart a local worker process after this many subjects
+
+    Returns
+    -------
+    CohortResult
+        ``.n_failed`` subjects failed (recorded with their one-line error in
+        ``cohort_summary.csv``); the others completed.
+
+    Raises
+    ------
+    ValueError
+        Bad manifest, missing or unreadable template, bad arguments.
+    """
+    if int(workers) < 1:
+        raise ValueError(f"workers must be >= 1, got {workers}")
+    if target_vertices is not None and int(target_vertices) < 100:
+        raise ValueError(f"target_vertices must be >= 100, got {target_vertices}")
+    start = time.perf_counter()
+    man: Manifest = read_manifest(manifest, template=template)
+    out = Path(output_dir)
+    (out / "subjects").mkdir(parents=True, exist_ok=True)
+    options = {"target_vertices": None if target_vertices is None else int(target_vertices),
+               "n_eigenvalues": int(n_eigenvalues), "seed": int(seed)}
+    tfile, tkey, n_template = _prepare_template(man.template, out, options)
+
+    rows: list[dict | None] = [None] * len(man.subjects)
+    subject_dirs = [out / "subjects" / e.subject for e in man.subjects]
+    tasks: list[SubjectTask] = []
+    for i, (entry, sdir) in enumerate(zip(man.subjects, subject_dirs)):
+        key = cache_key(input_digest=_digest_or_marker(entry.path), label=entry.label,
+                        template_key=tkey, options=options, version=__version__)
+        stored = None if force else read_finished(sdir, key)
+        if stored is not None:
+            rows[i] = {"index": i, "subject": entry.subject, "key": key, "cached": True,
+                       "status": "ok", "error": "", "values": stored}
+        else:
+            tasks.append(SubjectTask(index=i, subject=entry.subject, path=str(entry.path),
+                                     label=entry.label, key=key, subject_dir=str(sdir),
+                                     template_file=str(tfile), template_key=tkey,
+                                     options=options))
+
+    stage_seconds = {s: 0.0 for s in STAGES}
+    peak: dict[str, float] = {}
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+
+        bar = tqdm(total=len(man.subjects), initial=len(man.subjects) - len(tasks),
+                   unit="subject", desc="cohort", dynamic_ncols=True)
+    n_failed_live = 0
+    try:
+        for row in run_tasks(tasks, workers=int(workers), scheduler=scheduler,
+                             max_tasks_per_worker=max_tasks_per_worker):
+            rows[row["index"]] = row
+            for s in STAGES:
+                stage_seconds[s] += float(row.get("timings", {}).get(s, 0.0))
+            w = row.get("worker") or {}
+            if w:
+                tag = f"{w['host']}:{w['pid']}"
+                peak[tag] = max(peak.get(tag, 0.0), float(w["peak_rss_mb"]))
+            n_failed_live += row["status"] != "ok"
+            if bar is not None:
+                bar.update(1)
+                if n_failed_live:
+                    bar.set_postfix(failed=n_failed_live)
+    finally:
+        if bar is not None:
+            bar.close()
+
+    tables = {"summary": write_summary(out / "cohort_summary.csv", man, rows)}
+    tables["fields"] = write_fields_matrix(out / "cohort_fields.npz", man, rows, subject_dirs,
+                                           n_template, options["n_eigenvalues"])
+    group_file = out / "group_test.csv"
+    written = write_group_test(group_file, man, rows, tables["fields"],
+                               n_permutations=int(n_permutations), seed=int(seed))
+    if written is not None:
+        tables["group_test"] = written
+    elif group_file.exists():  # a stale test from an earlier run would mislead
+        group_file.unlink()
+
+    result = CohortResult(
+        output_dir=out, engine=engine_name(int(workers), scheduler), rows=rows,
+        n_computed=len(tasks), n_cached=len(man.subjects) - len(tasks),
+        n_failed=sum(r["status"] != "ok" for r in rows),
+        wall_seconds=time.perf_counter() - start, stage_seconds=stage_seconds,
+        peak_rss_mb=peak, tables=tables)
+    write_json(out / "run_summary.json", {
+        "engine": result.engine, "n_subjects": result.n_subjects,
+        "n_computed": result.n_computed, "n_cached": result.n_cached,
+        "n_failed": result.n_failed, "wall_seconds": result.wall_seconds,
+        "subjects_per_minute": result.subjects_per_minute, "stage_seconds": stage_seconds,
+        "peak_rss_mb": peak, "version": __version__, "options": options,
+        "failed": result.failed})
+    return result

@@ -1,0 +1,121 @@
+"""Engines that run cohort tasks: in-process, local processes, or a Dask cluster.
+
+Every engine calls the same :func:`surfacekit.batch_subject.run_subject` and
+yields its small result rows in completion order; the caller orders them by
+manifest position, so the tables never depend on the engine or on timing.
+"""
+from __future__ import annotations
+
+import multiprocessing
+from collections.abc import Iterator, Sequence
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+
+from .batch_subject import SubjectTask, one_line, run_subject
+
+_BLAS_LIMIT = None
+
+
+def pin_blas_threads(n_threads: int = 1) -> None:
+    """Process initializer: hold BLAS/OpenMP pools at `n_threads` for the worker's lifetime.
+
+    N workers on N cores would otherwise each start one BLAS thread per core and
+    oversubscribe the machine (common practice for process pools over NumPy code).
+    """
+    global _BLAS_LIMIT
+    from threadpoolctl import threadpool_limits
+
+    _BLAS_LIMIT = threadpool_limits(limits=n_threads)
+
+
+def _failure(task: SubjectTask, exc: BaseException) -> dict:
+    return {"index": task.index, "subject": task.subject, "key": task.key, "cached": False,
+            "status": "failed", "error": one_line(exc), "values": {}, "timings": {},
+            "worker": {}}
+
+
+def run_serial(tasks: Sequence[SubjectTask]) -> Iterator[dict]:
+    """In-process engine (``workers=1``): one task after the other."""
+    for task in tasks:
+        yield run_subject(task)
+
+
+def run_processes(tasks: Sequence[SubjectTask], workers: int, *,
+                  max_tasks_per_worker: int | None = None) -> Iterator[dict]:
+    """Local process pool with the "spawn" start method.
+
+    Spawned workers start clean (forking a process whose BLAS threads already run can
+    deadlock).  At most ``2 * workers`` tasks are queued at a time, so a huge cohort
+    never holds all its pending tasks in the pool's queues.  A worker that dies
+    (e.g. killed for memory) fails only the tasks it held; the pool is rebuilt for the rest.
+    """
+    pending = list(tasks)[::-1]
+    while pending:
+        ctx = multiprocessing.get_context("spawn")
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx,
+                                   initializer=pin_blas_threads,
+                                   max_tasks_per_child=max_tasks_per_worker)
+        running: dict = {}
+        broken = False
+        try:
+            while (pending or running) and not broken:
+                while pending and len(running) < 2 * workers:
+                    task = pending.pop()
+                    running[pool.submit(run_subject, task)] = task
+                done, _ = wait(running, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    task = running.pop(fut)
+                    try:
+                        yield fut.result()
+                    except Exception as exc:  # noqa: BLE001 - BrokenProcessPool: the worker died
+                        yield _failure(task, exc)
+                        broken = True
+            if broken:  # tasks still queued were lost with the pool: run them again
+                pending.extend(running.values())
+                pending.sort(key=lambda t: -t.index)
+        finally:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+def run_dask(tasks: Sequence[SubjectTask], scheduler: str) -> Iterator[dict]:
+    """Dask distributed engine: one task per subject on the cluster at `scheduler`.
+
+    Workers must see ``output_dir`` and the input files at the same paths (a
+    shared file system).  BLAS threads are pinned inside each task.
+    """
+    try:
+        from distributed import Client, as_completed
+    except ImportError:
+        raise ImportError("the Dask engine needs the 'cluster' extra: "
+                          "pip install 'surfacekit[cluster]'") from None
+    with Client(scheduler, timeout="30s") as client:
+        futures = client.map(run_subject, list(tasks), pure=False,
+                             key=[f"surfacekit-subject-{t.subject}-{t.key}" for t in tasks])
+        by_key = {f.key: t for f, t in zip(futures, tasks)}
+        try:
+            for fut in as_completed(futures):
+                task = by_key[fut.key]
+                try:
+                    yield fut.result()
+                except Exception as exc:  # noqa: BLE001 - KilledWorker, lost worker, ...
+                    yield _failure(task, exc)
+                fut.release()
+        finally:
+            client.cancel([f for f in futures if not f.done()])
+
+
+def run_tasks(tasks: Sequence[SubjectTask], *, workers: int = 1, scheduler: str | None = None,
+              max_tasks_per_worker: int | None = None) -> Iterator[dict]:
+    """Pick the engine: Dask when `scheduler` is given, else processes when ``workers > 1``."""
+    if not tasks:
+        return iter(())
+    if scheduler:
+        return run_dask(tasks, scheduler)
+    if workers > 1:
+        return run_processes(tasks, workers, max_tasks_per_worker=max_tasks_per_worker)
+    return run_serial(tasks)
+
+
+def engine_name(workers: int, scheduler: str | None) -> str:
+    if scheduler:
+        return f"dask:{scheduler}"
+    return f"processes:{workers}" if workers > 1 else "in-process"

@@ -1,0 +1,189 @@
+"""Cohort manifest (CSV) and the content-derived cache keys of a cohort run.
+
+Manifest columns (header required): ``subject,path,label,group,role,age,sex``.
+``label``, ``age`` and ``sex`` may be empty; extra columns are kept as covariates
+and copied to the cohort table.  Exactly one row has ``role`` ``template``
+(unless a template is given separately); every other row is a ``subject``.
+``path`` is relative to the manifest's own folder, or absolute: a mesh
+(.ply .obj .stl .off .gii .vtk) or a label volume (.nii, .nii.gz) whose
+``label`` column gives the integer label.
+"""
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+REQUIRED_COLUMNS = ("subject", "path", "label", "group", "role", "age", "sex")
+VOLUME_SUFFIXES = (".nii", ".nii.gz")
+# Bump when the per-subject computation changes meaning, so old caches are not reused.
+PIPELINE_VERSION = "cohort-1"
+_SUBJECT_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
+
+
+@dataclass(frozen=True)
+class ManifestEntry:
+    """One manifest row: a subject (or the template) and where its surface comes from."""
+
+    subject: str
+    path: Path
+    label: int | None = None
+    group: str = ""
+    role: str = "subject"
+    covariates: dict = field(default_factory=dict)   # age, sex and any extra columns (strings)
+
+    @property
+    def is_volume(self) -> bool:
+        return self.path.name.lower().endswith(VOLUME_SUFFIXES)
+
+
+@dataclass(frozen=True)
+class Manifest:
+    """A parsed cohort manifest: subjects in file order, the template, covariate names."""
+
+    path: Path
+    subjects: tuple[ManifestEntry, ...]
+    template: ManifestEntry | None
+    covariate_names: tuple[str, ...]
+
+    @property
+    def groups(self) -> list[str]:
+        """Distinct non-empty group names in order of first appearance."""
+        return list(dict.fromkeys(e.group for e in self.subjects if e.group))
+
+
+def _parse_label(text: str, line: int) -> int | None:
+    text = text.strip()
+    if not text:
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        raise ValueError(f"manifest line {line}: label {text!r} is not an integer") from None
+    if not value.is_integer():
+        raise ValueError(f"manifest line {line}: label {text!r} is not an integer")
+    return int(value)
+
+
+def read_manifest(path, *, template=None) -> Manifest:
+    """Parse and check a cohort manifest CSV.
+
+    Parameters
+    ----------
+    path : path of the CSV file
+    template : optional path of a template surface; overrides (and makes
+        optional) the manifest's ``role=template`` row.
+
+    Raises
+    ------
+    ValueError
+        Missing file or columns, no or several template rows, duplicate or
+        unsafe subject ids, bad labels, an unknown role, or no subjects.  Missing or
+        corrupt subject files are *not* manifest errors: they become failure rows.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise ValueError(f"manifest not found: {path}")
+    base = path.resolve().parent
+    with open(path, newline="", encoding="utf-8-sig") as fh:
+        reader = csv.DictReader(fh)
+        header = [h.strip() for h in (reader.fieldnames or [])]
+        missing = [c for c in REQUIRED_COLUMNS if c not in header]
+        if missing:
+            raise ValueError(f"manifest {path.name} lacks column(s) {', '.join(missing)} "
+                             f"(header must be {','.join(REQUIRED_COLUMNS)})")
+        reader.fieldnames = header
+        extra = [h for h in header if h not in REQUIRED_COLUMNS]
+        covariate_names = ("age", "sex", *extra)
+        subjects: list[ManifestEntry] = []
+        templates: list[ManifestEntry] = []
+        for line, row in enumerate(reader, start=2):
+            row = {k: (v or "").strip() for k, v in row.items() if k is not None}
+            if not any(row.values()):
+                continue
+            sid, role = row["subject"], (row["role"].lower() or "subject")
+            if role not in ("subject", "template"):
+                raise ValueError(f"manifest line {line}: role {row['role']!r} is neither "
+                                 "'subject' nor 'template'")
+            if not _SUBJECT_ID.match(sid):
+                raise ValueError(f"manifest line {line}: subject id {sid!r} must be letters, "
+                                 "digits, '.', '_' or '-'")
+            if not row["path"]:
+                raise ValueError(f"manifest line {line}: empty path for subject {sid!r}")
+            p = Path(row["path"])
+            entry = ManifestEntry(
+                subject=sid, path=p if p.is_absolute() else base / p,
+                label=_parse_label(row["label"], line), group=row["group"], role=role,
+                covariates={c: row.get(c, "") for c in covariate_names})
+            (templates if role == "template" else subjects).append(entry)
+    seen: set[str] = set()
+    for e in subjects:
+        if e.subject in seen:
+            raise ValueError(f"manifest {path.name}: subject id {e.subject!r} appears twice")
+        seen.add(e.subject)
+    if template is not None:
+        tpath = Path(template)
+        if not tpath.is_file():
+            raise ValueError(f"template not found: {tpath}")
+        label = templates[0].label if templates and templates[0].path == tpath.resolve() else None
+        chosen = ManifestEntry(subject="template", path=tpath.resolve(), label=label,
+                               role="template")
+    elif len(templates) == 1:
+        chosen = templates[0]
+    elif not templates:
+        raise ValueError(f"manifest {path.name} has no row with role 'template' "
+                         "(add one or pass a template path)")
+    else:
+        raise ValueError(f"manifest {path.name} has {len(templates)} template rows; exactly one "
+                         "is allowed")
+    if not subjects:
+        raise ValueError(f"manifest {path.name} lists no subjects")
+    return Manifest(path=path, subjects=tuple(subjects), template=chosen,
+                    covariate_names=tuple(covariate_names))
+
+
+def file_digest(path) -> str:
+    """sha256 of a file's bytes (hex), read in 1 MiB blocks; memory stays small."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def cache_key(*, input_digest: str, label: int | None, template_key: str, options: dict,
+              version: str) -> str:
+    """Key of one subject's result: input bytes, label, template, options and versions.
+
+    Any change of these gives a new key, so the subject is recomputed.  24 hex
+    characters (96 bits) of sha256 keep file names short with no practical
+    risk of collision.
+    """
+    payload = json.dumps({"input": input_digest, "label": label, "template": template_key,
+                          "options": options, "version": version, "pipeline": PIPELINE_VERSION},
+                         sort_keys=True)
+    return hashlib.sha256(payload.encode()).hexdigest()[:24]
+
+
+def format_value(value) -> str:
+    """Deterministic CSV text of a value: floats as ``%.6g``, NaN/None as empty.
+
+    Six significant digits print the same text for the same float on every
+    engine and platform, so tables compare byte for byte.
+    """
+    if value is None:
+        return ""
+    if isinstance(value, bool):
+        return "1" if value else "0"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if math.isnan(value):
+            return ""
+        text = f"{value:.6g}"
+        return "0" if text == "-0" else text
+    return str(value)

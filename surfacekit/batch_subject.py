@@ -1,0 +1,253 @@
+"""The per-subject work of a cohort run, done inside a worker: load, compute, write, release.
+
+Each task reads its input file, computes the per-template-vertex fields and the
+scalar row, writes them under ``subjects/<id>/`` atomically and returns only the
+small row; large arrays never travel back to the coordinating process.  BLAS and
+OpenMP pools are held at one thread while a task runs, so N workers use N cores
+and every engine does the same floating-point operations in the same order.
+"""
+from __future__ import annotations
+
+import gc
+import json
+import os
+import resource
+import socket
+import time
+import traceback
+import zipfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .batch_manifest import VOLUME_SUFFIXES
+from .io import atomic_path
+
+STAGES = ("load", "prepare", "descriptors", "match", "change", "write")
+MARKER_SUFFIX = ".done"
+
+
+@dataclass(frozen=True)
+class SubjectTask:
+    """Everything a worker needs for one subject (small and picklable)."""
+
+    index: int              # position in the manifest
+    subject: str
+    path: str
+    label: int | None
+    key: str                # cache key (content of input + template + options + version)
+    subject_dir: str
+    template_file: str      # prepared template, NPZ (exact float64)
+    template_key: str
+    options: dict
+
+
+def zip_member(zf: zipfile.ZipFile, name: str):
+    """A writable ``<name>.npy`` member with a fixed time stamp (reproducible bytes)."""
+    info = zipfile.ZipInfo(f"{name}.npy", date_time=(1980, 1, 1, 0, 0, 0))
+    info.compress_type = zipfile.ZIP_DEFLATED
+    info.external_attr = 0o644 << 16
+    return zf.open(info, "w", force_zip64=True)
+
+
+def save_npz_deterministic(path, arrays: dict) -> Path:
+    """Write arrays to an NPZ (numpy's ``.npy`` members in a deflated zip) atomically.
+
+    Unlike ``numpy.savez_compressed`` the zip members carry a fixed time stamp, so
+    equal arrays give byte-identical files whatever the engine or the time of the run.
+    """
+    path = Path(path)
+    with atomic_path(path, suffix=".npz") as tmp, \
+            zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        for name, value in arrays.items():
+            with zip_member(zf, name) as fh:
+                np.lib.format.write_array(fh, np.asarray(value), allow_pickle=False)
+    return path
+
+
+def write_json(path, payload: dict) -> None:
+    with atomic_path(Path(path), suffix=".json") as tmp:
+        tmp.write_text(json.dumps(payload, indent=1, sort_keys=True) + "\n")
+
+
+def load_input_surface(path, label: int | None):
+    """A mesh file through ``sk.load`` or a label volume through ``sk.from_segmentation``."""
+    import surfacekit as sk
+
+    path = Path(path)
+    if not path.is_file():
+        raise FileNotFoundError(f"input file not found: {path}")
+    if path.name.lower().endswith(VOLUME_SUFFIXES):
+        if label is None:
+            raise ValueError(f"label missing for label volume {path.name}")
+        return sk.from_segmentation(path, label)
+    return sk.load(path)
+
+
+def prepare_surface(surface, options: dict):
+    import surfacekit as sk
+
+    prepared, _report = sk.prepare(surface, target_vertices=options["target_vertices"])
+    return prepared
+
+
+def spectrum(surface, options: dict) -> np.ndarray:
+    import surfacekit as sk
+
+    return np.asarray(sk.shape_dna(surface, k=options["n_eigenvalues"]), dtype=np.float64)
+
+
+_TEMPLATE_CACHE: dict = {}
+
+
+def load_template(template_file: str, template_key: str):
+    """The prepared template and its spectrum, kept per process.
+
+    Reusing one template object lets its cached eigenbasis serve every subject a
+    worker handles; the eigenbasis cache returns the same arrays for the same
+    sequence of requests, so results do not depend on which worker ran what.
+    """
+    from .surface import Surface
+
+    if template_key not in _TEMPLATE_CACHE:
+        _TEMPLATE_CACHE.clear()
+        with np.load(template_file, allow_pickle=False) as data:
+            template = Surface(data["vertices"], data["faces"])
+            dna = np.array(data["shape_dna"])
+        _TEMPLATE_CACHE[template_key] = (template, dna)
+    return _TEMPLATE_CACHE[template_key]
+
+
+def one_line(exc: BaseException) -> str:
+    """``Type: message`` on one line (first line of the message, at most 300 characters)."""
+    text = str(exc).strip().splitlines()
+    msg = f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
+    return msg[:300]
+
+
+def _compute(task: SubjectTask, timings: dict):
+    import surfacekit as sk
+
+    opts = task.options
+    tic = time.perf_counter()
+    raw = load_input_surface(task.path, task.label)
+    n_input = raw.n_vertices
+    timings["load"] = time.perf_counter() - tic
+
+    tic = time.perf_counter()
+    subject = prepare_surface(raw, opts)
+    del raw
+    timings["prepare"] = time.perf_counter() - tic
+
+    template, template_dna = load_template(task.template_file, task.template_key)
+    tic = time.perf_counter()
+    dna = spectrum(subject, opts)
+    spectral_distance = float(sk.shape_dna_distance(template_dna, dna, k=opts["n_eigenvalues"]))
+    timings["descriptors"] = time.perf_counter() - tic
+
+    tic = time.perf_counter()
+    corr = sk.match(template, subject, seed=opts["seed"])
+    timings["match"] = time.perf_counter() - tic
+
+    tic = time.perf_counter()
+    rep = sk.measure_change(template, subject, corr=corr, seed=opts["seed"])
+    timings["change"] = time.perf_counter() - tic
+
+    nd = np.asarray(rep.normal_displacement, dtype=np.float64)
+    lar = np.asarray(rep.log_area_ratio, dtype=np.float64)
+    fields = {
+        "normal_displacement": nd,                                   # (n_template,) mm, + outward
+        "log_area_ratio": lar,                                       # (n_template,)
+        "displacement": np.asarray(rep.displacement, np.float64),    # (n_template, 3) mm
+        "target_vertex": np.asarray(corr.source_to_target, np.int64),  # subject vertex per template vertex
+        "shape_dna": dna,                                            # (k,) dimensionless
+    }
+    if corr.confidence is not None:
+        fields["match_confidence"] = np.asarray(corr.source_confidence
+                                                if corr.source_confidence is not None
+                                                else np.full(template.n_vertices, np.nan))
+    abs_nd = np.abs(nd)
+    scalars = {
+        "n_vertices_input": int(n_input),
+        "n_vertices": int(subject.n_vertices),
+        "volume_ml": float(subject.volume) / 1000.0,
+        "area_mm2": float(subject.area),
+        "volume_change_ml": float(rep.volume_change_ml),
+        "mean_abs_normal_displacement_mm": float(abs_nd.mean()),
+        "max_abs_normal_displacement_mm": float(abs_nd.max()),
+        "mean_log_area_ratio": float(lar.mean()),
+        "spectral_distance": spectral_distance,
+        "mean_match_confidence": (float(np.mean(fields["match_confidence"]))
+                                  if "match_confidence" in fields else None),
+    }
+    return subject, fields, scalars
+
+
+def write_subject(task: SubjectTask, subject, fields: dict, scalars: dict, timings: dict) -> None:
+    """Write fields, the prepared mesh, the row and, last, the completion marker."""
+    import surfacekit as sk
+
+    out = Path(task.subject_dir)
+    save_npz_deterministic(out / "fields.npz", fields)
+    sk.save(subject, out / "prepared.ply")
+    write_json(out / "row.json", {"subject": task.subject, "key": task.key, "values": scalars})
+    with atomic_path(out / f"{task.key}{MARKER_SUFFIX}", suffix=MARKER_SUFFIX) as tmp:
+        tmp.write_text(task.key + "\n")
+
+
+def read_finished(subject_dir, key: str) -> dict | None:
+    """The stored row of a subject finished under `key`, or None when it must be computed."""
+    out = Path(subject_dir)
+    marker = out / f"{key}{MARKER_SUFFIX}"
+    row_file = out / "row.json"
+    if not (marker.is_file() and row_file.is_file() and (out / "fields.npz").is_file()):
+        return None
+    try:
+        stored = json.loads(row_file.read_text())
+    except (OSError, ValueError):
+        return None
+    return stored["values"] if stored.get("key") == key else None
+
+
+def worker_info() -> dict:
+    # ru_maxrss is in KiB on Linux (getrusage(2) man page)
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    return {"pid": os.getpid(), "host": socket.gethostname(), "peak_rss_mb": peak}
+
+
+def run_subject(task: SubjectTask) -> dict:
+    """Compute and store one subject; never raises: failures come back as rows."""
+    from threadpoolctl import threadpool_limits
+
+    out = Path(task.subject_dir)
+    timings = {s: 0.0 for s in STAGES}
+    row = {"index": task.index, "subject": task.subject, "key": task.key, "cached": False}
+    start = time.perf_counter()
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        for stale in out.glob(f"*{MARKER_SUFFIX}"):
+            stale.unlink()
+        with threadpool_limits(limits=1):
+            subject, fields, scalars = _compute(task, timings)
+            tic = time.perf_counter()
+            write_subject(task, subject, fields, scalars, timings)
+            timings["write"] = time.perf_counter() - tic
+        row.update(status="ok", error="", values=scalars)
+        (out / "error.txt").unlink(missing_ok=True)
+        del subject, fields
+    except Exception as exc:  # noqa: BLE001 - a failing subject must not stop the cohort
+        row.update(status="failed", error=one_line(exc), values={})
+        try:
+            (out / "error.txt").write_text(traceback.format_exc())
+        except OSError:
+            pass
+    gc.collect()
+    timings["total"] = time.perf_counter() - start
+    row["timings"] = timings
+    row["worker"] = worker_info()
+    try:  # informative only (never compared): time per stage and the worker's peak memory
+        write_json(out / "timings.json", {**timings, **row["worker"]})
+    except OSError:
+        pass
+    return row

@@ -1,0 +1,162 @@
+"""Cohort tables written after the per-subject work, always in manifest order.
+
+``cohort_summary.csv``  one row per subject: manifest columns, status, one-line
+                        error, and the subject's scalars (fixed ``%.6g`` text).
+``cohort_fields.npz``   per-template-vertex matrices (subjects x template vertices),
+                        NaN rows for failed subjects, streamed row by row to disk.
+``group_test.csv``      vertex-wise two-group test of the normal displacement
+                        (seeded permutations) when exactly two groups exist.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import zipfile
+from pathlib import Path
+
+import numpy as np
+
+from .batch_manifest import Manifest, format_value
+from .batch_subject import zip_member
+from .io import atomic_path
+
+SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "volume_change_ml",
+                  "mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
+                  "mean_log_area_ratio", "spectral_distance", "mean_match_confidence")
+VERTEX_FIELDS = ("normal_displacement", "log_area_ratio")
+
+
+def _write_csv(path: Path, header: list[str], rows: list[list[str]]) -> Path:
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(header)
+    writer.writerows(rows)
+    with atomic_path(path, suffix=".csv") as tmp:
+        tmp.write_text(buf.getvalue(), encoding="utf-8")
+    return path
+
+
+def write_summary(path, manifest: Manifest, rows: list[dict]) -> Path:
+    """``cohort_summary.csv``: subject, group, label, covariates, status, error, scalars."""
+    header = ["subject", "group", "label", *manifest.covariate_names, "status", "error",
+              *SCALAR_COLUMNS]
+    lines = []
+    for entry, row in zip(manifest.subjects, rows):
+        values = row.get("values") or {}
+        lines.append([entry.subject, entry.group, format_value(entry.label),
+                      *(entry.covariates.get(c, "") for c in manifest.covariate_names),
+                      row["status"], row.get("error", ""),
+                      *(format_value(values.get(c)) for c in SCALAR_COLUMNS)])
+    return _write_csv(Path(path), header, lines)
+
+
+def write_fields_matrix(path, manifest: Manifest, rows: list[dict], subject_dirs: list[Path],
+                        n_template: int, n_eigenvalues: int) -> Path:
+    """``cohort_fields.npz``: (s, n_template) float64 matrices in manifest order.
+
+    Each matrix is streamed one subject row at a time, so memory stays at one
+    row however large the cohort.  Also stores ``subjects``, ``groups``, ``ok`` (s,)
+    and ``shape_dna`` (s, k).  Fixed zip time stamps make the file byte-reproducible.
+    """
+    s = len(manifest.subjects)
+    ok = np.array([r["status"] == "ok" for r in rows])
+    names = {"subjects": np.array([e.subject for e in manifest.subjects]),
+             "groups": np.array([e.group for e in manifest.subjects]), "ok": ok}
+    columns = {f: (n_template,) for f in VERTEX_FIELDS}
+    columns["shape_dna"] = (n_eigenvalues,)
+    with atomic_path(Path(path), suffix=".npz") as tmp, \
+            zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        for name, arr in names.items():
+            with zip_member(zf, name) as fh:
+                np.lib.format.write_array(fh, arr, allow_pickle=False)
+        for name, shape in columns.items():
+            header = {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float64)),
+                      "fortran_order": False, "shape": (s, *shape)}
+            with zip_member(zf, name) as fh:
+                np.lib.format.write_array_header_1_0(fh, header)
+                for good, sdir in zip(ok, subject_dirs):
+                    row = np.full(shape, np.nan)
+                    if good:
+                        with np.load(sdir / "fields.npz", allow_pickle=False) as data:
+                            values = np.asarray(data[name], dtype=np.float64).ravel()
+                        m = min(values.size, row.size)
+                        row[:m] = values[:m]
+                    fh.write(row.tobytes())
+    return Path(path)
+
+
+def two_groups(manifest: Manifest, rows: list[dict]) -> tuple[str, str] | None:
+    """The two group names (manifest order) when the finished subjects form exactly two
+    groups of at least two subjects each, else None."""
+    groups: dict[str, int] = {}
+    for entry, row in zip(manifest.subjects, rows):
+        if row["status"] == "ok" and entry.group:
+            groups[entry.group] = groups.get(entry.group, 0) + 1
+    if len(groups) != 2 or min(groups.values()) < 2:
+        return None
+    a, b = groups
+    return a, b
+
+
+def covariate_matrix(entries) -> tuple[np.ndarray | None, list[str]]:
+    """Numeric covariates of the given manifest entries (group A rows, then group B).
+
+    A column is used when every entry has a value and the values vary: numbers
+    as they are, two-level text (e.g. sex F/M) coded 0/1 in sorted order.
+    """
+    names = list(dict.fromkeys(c for e in entries for c in e.covariates))
+    cols, used = [], []
+    for name in names:
+        values = [e.covariates.get(name, "") for e in entries]
+        if any(v == "" for v in values):
+            continue
+        try:
+            col = np.array([float(v) for v in values])
+        except ValueError:
+            levels = sorted(set(values))
+            if len(levels) != 2:
+                continue
+            col = np.array([float(levels.index(v)) for v in values])
+        if np.all(np.isfinite(col)) and np.ptp(col) > 0:
+            cols.append(col)
+            used.append(name)
+    return (np.column_stack(cols) if cols else None), used
+
+
+def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
+                     *, n_permutations: int, seed: int) -> Path | None:
+    """``group_test.csv``: per template vertex, group means, t, p-values and FDR q-values.
+
+    Runs :func:`surfacekit.vertexwise_group_test` (permutation max-T, Nichols &
+    Holmes 2002; FDR, Benjamini & Hochberg 1995) on the normal displacement (mm),
+    adjusted for the manifest covariates usable as numbers (see
+    :func:`covariate_matrix`); if they make the design rank deficient the test
+    runs without them.  Returns None (and writes nothing) without exactly two groups.
+    """
+    import surfacekit as sk
+
+    pair = two_groups(manifest, rows)
+    if pair is None:
+        return None
+    with np.load(fields_file, allow_pickle=False) as data:
+        nd, ok, groups = data["normal_displacement"], data["ok"], data["groups"]
+    in_a, in_b = ok & (groups == pair[0]), ok & (groups == pair[1])
+    a, b = nd[in_a], nd[in_b]
+    entries = ([e for e, m in zip(manifest.subjects, in_a) if m]
+               + [e for e, m in zip(manifest.subjects, in_b) if m])
+    cov, _used = covariate_matrix(entries)
+    try:
+        res = sk.vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed,
+                                       covariates=cov)
+    except ValueError:
+        if cov is None:
+            raise
+        res = sk.vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed)
+    columns = [a.mean(axis=0), b.mean(axis=0)] + [
+        np.asarray(getattr(res, name), dtype=np.float64)
+        for name in ("t", "p_uncorrected", "p_fwer", "q_fdr")]
+    header = ["vertex", f"mean_{pair[0]}_mm", f"mean_{pair[1]}_mm", "t", "p_uncorrected",
+              "p_fwer", "q_fdr"]
+    lines = [[str(i), *(format_value(float(v)) for v in vals)]
+             for i, vals in enumerate(zip(*columns))]
+    return _write_csv(Path(path), header, lines)
