@@ -1,59 +1,349 @@
-"""Reading and writing surfaces and per-vertex fields (minimal; extended by the I/O work)."""
+"""Reading and writing surfaces and per-vertex fields.
+
+Formats: PLY (ASCII/binary), OBJ, STL (ASCII/binary), OFF, legacy VTK polydata
+(ASCII/binary), GIFTI surfaces (``.gii``, via nibabel) and NPZ (vertices, faces
+and fields).  PLY, VTK, GIFTI and NPZ carry per-vertex fields inside the file;
+OBJ, STL and OFF get a ``<file>.fields.npz`` sidecar.  Loading never unpickles,
+follows external references or executes anything; every count is checked against
+the file size before allocation; anything unreadable raises ``SurfaceError`` with
+a one-line message that starts with the file name.  Every write goes to a
+temporary file renamed into place, so a failed write leaves no partial file and
+never clobbers an existing one.
+"""
 from __future__ import annotations
 
 import os
+import re
 import tempfile
+import zipfile
 from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 
+from .meshformats import FIELD_NAME, read_ply, write_ply
+from .simpleformats import read_obj, read_off, read_stl, write_obj, write_off, write_stl
 from .surface import Surface, SurfaceError
+from .vtk_legacy import read_vtk, write_vtk
 
-MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off")
+MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk", ".npz")
+_NATIVE_FIELDS = (".ply", ".vtk", ".gii", ".npz")
+# Headers of files that are not meshes, to name the mistake instead of a parse error.
+_MAGIC = [
+    (b"\x89PNG\r\n\x1a\n", "a PNG image"), (b"\xff\xd8\xff", "a JPEG image"),
+    (b"GIF8", "a GIF image"), (b"%PDF", "a PDF document"),
+    (b"\x1f\x8b", "gzip-compressed data (decompress it first)"),
+    (b"BZh", "bzip2-compressed data"), (b"\xfd7zXZ\x00", "xz-compressed data"),
+    (b"\x28\xb5\x2f\xfd", "zstd-compressed data"), (b"PK\x03\x04", "a zip archive"),
+    (b"\x93NUMPY", "a NumPy .npy array"), (b"\x80\x02", "a Python pickle (never loaded)"),
+    (b"\x80\x03", "a Python pickle (never loaded)"), (b"\x80\x04", "a Python pickle (never loaded)"),
+    (b"\x80\x05", "a Python pickle (never loaded)"),
+]
+# Decompressed data may exceed the file by this factor (plus a fixed allowance) before
+# a GIFTI or NPZ file is refused as a decompression bomb (common practice; deflate
+# reaches ~1000:1 on constant data, real meshes ~2-5:1).
+_MAX_EXPANSION, _EXPANSION_ALLOWANCE = 100, 256 << 20
 
 
 @contextmanager
 def atomic_path(path, suffix: str | None = None):
-    """Yield a temporary path beside `path`; rename it into place only on success."""
+    """Yield a temporary path beside `path`; rename it into place only on success.
+
+    On any exception the temporary file is removed and `path` is untouched.  The
+    final file gets the usual permissions (0666 minus the umask).
+    """
     path = Path(path)
     suffix = path.suffix if suffix is None else suffix
     fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=f"{suffix}.part", dir=path.parent or ".")
     os.close(fd)
     try:
         yield Path(tmp)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
 
 
-def load(path) -> Surface:
-    """Read a surface mesh (.ply .obj .stl .off); unreadable input raises SurfaceError."""
-    import trimesh
-
+def sidecar_path(path) -> Path:
+    """The ``.fields.npz`` file that holds per-vertex fields for OBJ, STL and OFF meshes."""
     path = Path(path)
-    if not path.is_file():
+    return path.with_name(path.name + ".fields.npz")
+
+
+# ------------------------------------------------------------------------------ reading
+def _read_bytes(path: Path) -> bytes:
+    if not path.exists():
         raise SurfaceError(f"no such file: {path}")
-    suffix = path.suffix.lower()
-    if suffix not in MESH_SUFFIXES:
-        raise SurfaceError(f"unsupported mesh format {suffix!r} for {path.name}")
+    if path.is_dir():
+        raise SurfaceError(f"{path} is a directory, not a mesh file")
     try:
-        mesh = trimesh.load_mesh(str(path), process=False, file_type=suffix[1:])
-    except Exception as exc:  # trimesh raises many types on corrupt files
-        raise SurfaceError(f"cannot read {path.name} as {suffix[1:].upper()}: {exc}") from None
-    return Surface(mesh.vertices, mesh.faces, metadata={"source": str(path)})
+        data = path.read_bytes()
+    except OSError as exc:
+        raise SurfaceError(f"cannot read {path}: {exc.strerror or exc}") from None
+    if not data.strip():
+        raise SurfaceError(f"{path.name}: empty file")
+    return data
 
 
-def save(surface: Surface, path, fields: dict | None = None) -> Path:
-    """Write a surface (.ply .obj .stl .off), atomically."""
+def _sniff(data: bytes, kind: str) -> None:
+    """Refuse files whose leading bytes say they are something else."""
+    for magic, what in _MAGIC:
+        if data.startswith(magic):
+            raise SurfaceError(f"file is {what}, not a {kind} mesh")
+    if len(data) > 348 and data[344:348] in (b"n+1\x00", b"ni1\x00"):
+        raise SurfaceError(f"file is a NIfTI volume, not a {kind} mesh (use from_segmentation)")
+
+
+def _check_npz(path: Path) -> None:
+    """Refuse NPZ members holding objects (pickles) or claiming more data than the file can hold."""
+    size = path.stat().st_size
+    try:
+        with zipfile.ZipFile(path) as zf:
+            infos = zf.infolist()
+            if sum(i.file_size for i in infos) > _MAX_EXPANSION * size + _EXPANSION_ALLOWANCE:
+                raise SurfaceError("NPZ archive expands to far more data than it holds (refused)")
+            for info in infos:
+                with zf.open(info) as fh:
+                    version = np.lib.format.read_magic(fh)
+                    reader = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                              else np.lib.format.read_array_header_2_0)
+                    shape, _, dtype = reader(fh)
+                if dtype.hasobject:
+                    raise SurfaceError(f"NPZ member {info.filename!r} holds Python objects "
+                                       "(pickle; refused)")
+                if int(np.prod(shape, dtype=np.float64)) * dtype.itemsize > info.file_size:
+                    raise SurfaceError(f"NPZ member {info.filename!r} claims more data than it holds")
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, NotImplementedError) as exc:
+        raise SurfaceError(f"not a readable NPZ (zip) archive: {str(exc)[:80]}") from None
+    except ValueError as exc:
+        if isinstance(exc, SurfaceError):
+            raise
+        raise SurfaceError(f"bad NPZ member: {str(exc)[:80]}") from None
+
+
+def _npz_arrays(path: Path) -> dict:
+    _check_npz(path)
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            return {k: data[k] for k in data.files}
+    except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
+        raise SurfaceError(f"cannot read NPZ: {str(exc)[:80]}") from None
+
+
+def _read_npz_mesh(path: Path):
+    arrays = _npz_arrays(path)
+    if "vertices" not in arrays or "faces" not in arrays:
+        raise SurfaceError("NPZ file lacks 'vertices' and 'faces' arrays")
+    fields = {k[len("fields/"):]: v for k, v in arrays.items() if k.startswith("fields/")}
+    return arrays["vertices"], arrays["faces"], fields, "npz"
+
+
+def _read_gifti(data: bytes):
+    """GIFTI surface: NIFTI_INTENT_POINTSET + NIFTI_INTENT_TRIANGLE; other arrays become fields."""
+    import nibabel as nib
+
+    # External DTDs are never fetched by expat; internal subsets could define entities.
+    if re.search(rb"<!ENTITY|<!DOCTYPE[^>]*\[", data):
+        raise SurfaceError("GIFTI XML with entity declarations is refused")
+    if b"ExternalFileBinary" in data:
+        raise SurfaceError("GIFTI arrays stored in external files are not followed")
+    declared = 0
+    for tag in re.findall(rb"<DataArray\b[^>]*>", data):
+        dims = [int(d) for d in re.findall(rb'\bDim\d\s*=\s*"(\d{1,15})"', tag)]
+        declared += int(np.prod(dims, dtype=np.float64)) * 8
+    if declared > _MAX_EXPANSION * len(data) + _EXPANSION_ALLOWANCE:
+        raise SurfaceError("GIFTI arrays claim far more data than the file holds (refused)")
+    try:
+        img = nib.gifti.GiftiImage.from_bytes(data)
+        arrays = [(da.intent, nib.nifti1.intent_codes.label[da.intent], da.meta.get("Name"),
+                   np.asarray(da.data)) for da in img.darrays]
+    except Exception as exc:  # nibabel/expat raise many types on corrupt XML or data
+        raise SurfaceError(f"cannot parse GIFTI: {type(exc).__name__}: {str(exc)[:80]}") from None
+    points = [a for a in arrays if a[1] == "pointset"]
+    tris = [a for a in arrays if a[1] == "triangle"]
+    if not points:
+        raise SurfaceError("GIFTI file has no NIFTI_INTENT_POINTSET array (not a surface)")
+    if not tris:
+        raise SurfaceError("GIFTI file has no NIFTI_INTENT_TRIANGLE array (point set only)")
+    vertices, n = points[0][3], len(points[0][3])
+    fields = {}
+    for i, (_, label, name, arr) in enumerate(arrays):
+        if label not in ("pointset", "triangle") and arr.ndim in (1, 2) and len(arr) == n:
+            fields[name if name and FIELD_NAME.match(name) else f"array{i}"] = arr
+    return vertices, tris[0][3], fields, "gifti"
+
+
+_READERS = {".ply": read_ply, ".obj": read_obj, ".stl": read_stl, ".off": read_off,
+            ".vtk": read_vtk, ".gii": _read_gifti}
+_PARSE_ERRORS = (ValueError, IndexError, KeyError, OverflowError, MemoryError, UnicodeDecodeError)
+
+
+def _align_sidecar(vertices: np.ndarray, side: dict, name: str) -> dict:
+    """Fields from a sidecar, reordered to the loaded vertices (STL welding reorders them)."""
+    stored = side.get("vertices")
+    fields = {k[len("fields/"):]: v for k, v in side.items() if k.startswith("fields/")}
+    if stored is None or stored.ndim != 2 or stored.shape[1:] != (3,):
+        raise SurfaceError(f"{name}: sidecar lacks the vertices it was written for")
+    if stored.shape == vertices.shape and np.array_equal(stored, vertices):
+        return fields
+    from scipy.spatial import cKDTree
+
+    dist, idx = cKDTree(stored).query(vertices)
+    scale = float(np.abs(vertices).max()) + 1.0
+    if not np.all(dist <= 4 * np.finfo(np.float32).eps * scale):
+        raise SurfaceError(f"{name}: sidecar fields do not match the mesh vertices")
+    return {k: np.asarray(v)[idx] for k, v in fields.items()}
+
+
+def load_with_fields(path) -> tuple[Surface, dict]:
+    """Read a surface and its per-vertex fields.
+
+    Parameters
+    ----------
+    path : str or Path
+        A ``.ply .obj .stl .off .gii .vtk .npz`` file.
+
+    Returns
+    -------
+    (Surface, dict)
+        The surface (``metadata["source"]`` is the path, ``metadata["format"]``
+        the format read) and ``{name: (n,) or (n, k) array}``.
+
+    Raises
+    ------
+    SurfaceError
+        Missing, empty, truncated, mislabelled or malformed files; non-finite
+        coordinates; face indices out of range; no faces; only degenerate faces.
+    """
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix not in MESH_SUFFIXES:
-        raise SurfaceError(f"unsupported mesh format {suffix!r} for {path.name}")
-    mesh = surface.to_trimesh()
-    with atomic_path(path) as tmp:
-        mesh.export(str(tmp), file_type=suffix[1:])
+        raise SurfaceError(f"unsupported mesh format {suffix or '(none)'!r} for {path.name} "
+                           f"(supported: {' '.join(MESH_SUFFIXES)})")
+    data = _read_bytes(path)
+    kind = suffix[1:].upper()
+    try:
+        if suffix == ".npz":
+            if not data.startswith(b"PK"):
+                _sniff(data, kind)
+                raise SurfaceError("not an NPZ (zip) archive")
+            vertices, faces, fields, fmt = _read_npz_mesh(path)
+        else:
+            exact_stl = suffix == ".stl" and len(data) >= 84 and \
+                len(data) == 84 + 50 * int(np.frombuffer(data, "<u4", 1, 80)[0])
+            if not exact_stl:
+                _sniff(data, kind)
+            vertices, faces, fields, fmt = _READERS[suffix](data)
+        surface = Surface(vertices, faces, metadata={"source": str(path), "format": fmt})
+    except SurfaceError as exc:
+        raise SurfaceError(f"{path.name}: {exc}") from None
+    except _PARSE_ERRORS as exc:
+        raise SurfaceError(f"{path.name}: cannot parse as {kind}: "
+                           f"{type(exc).__name__}: {str(exc)[:80]}") from None
+    area = surface.face_areas
+    diag = float(np.linalg.norm(surface.bounds[1] - surface.bounds[0]))
+    if not np.any(area > 1e-12 * diag * diag):
+        raise SurfaceError(f"{path.name}: only degenerate faces (all {surface.n_faces} have zero area)")
+    if suffix not in _NATIVE_FIELDS and sidecar_path(path).is_file():
+        fields = _align_sidecar(surface.vertices, _npz_arrays(sidecar_path(path)), path.name)
+    try:
+        fields = validate_fields(fields, surface.n_vertices)
+    except SurfaceError as exc:
+        raise SurfaceError(f"{path.name}: {exc}") from None
+    return surface, fields
+
+
+def load(path) -> Surface:
+    """Read a surface mesh (.ply .obj .stl .off .gii .vtk .npz); unreadable input raises SurfaceError."""
+    return load_with_fields(path)[0]
+
+
+# ------------------------------------------------------------------------------ writing
+def validate_fields(fields: dict | None, n: int) -> dict:
+    """Check per-vertex fields: names are identifiers, arrays numeric with n rows, 1-D or 2-D."""
+    out = {}
+    for name, arr in (fields or {}).items():
+        if not isinstance(name, str) or not FIELD_NAME.match(name) or name in ("x", "y", "z"):
+            raise SurfaceError(f"bad field name {name!r} (letters, digits, _ . -; not x/y/z)")
+        a = np.asarray(arr)
+        if a.dtype.kind not in "biuf":
+            raise SurfaceError(f"field {name!r} must be numeric, got dtype {a.dtype}")
+        if a.ndim not in (1, 2) or len(a) != n or (a.ndim == 2 and a.shape[1] == 0):
+            raise SurfaceError(f"field {name!r} has shape {a.shape}; expected ({n},) or ({n}, k)")
+        out[name] = a
+    return out
+
+
+def _gifti_bytes(surface: Surface, fields: dict) -> bytes:
+    from nibabel.gifti import GiftiDataArray, GiftiImage, GiftiMetaData
+
+    img = GiftiImage()
+    img.add_gifti_data_array(GiftiDataArray(surface.vertices.astype(np.float32),
+                                            intent="NIFTI_INTENT_POINTSET", datatype="NIFTI_TYPE_FLOAT32"))
+    img.add_gifti_data_array(GiftiDataArray(surface.faces.astype(np.int32),
+                                            intent="NIFTI_INTENT_TRIANGLE", datatype="NIFTI_TYPE_INT32"))
+    for name, a in fields.items():
+        integer = a.dtype.kind in "biu"
+        intent = "NIFTI_INTENT_LABEL" if integer else (
+            "NIFTI_INTENT_VECTOR" if a.ndim == 2 and a.shape[1] == 3 else "NIFTI_INTENT_NONE")
+        img.add_gifti_data_array(GiftiDataArray(
+            a.astype(np.int32 if integer else np.float32), intent=intent,
+            datatype="NIFTI_TYPE_INT32" if integer else "NIFTI_TYPE_FLOAT32",
+            meta=GiftiMetaData({"Name": name})))
+    return img.to_bytes()
+
+
+def _check_int32(fields: dict, fmt: str) -> None:
+    for name, a in fields.items():
+        if a.dtype.kind in "iu" and a.size and (a.min() < -2**31 or a.max() >= 2**31):
+            raise SurfaceError(f"integer field {name!r} does not fit the int32 that {fmt} stores")
+
+
+def save(surface: Surface, path, fields: dict | None = None, *, binary: bool = True) -> Path:
+    """Write a surface (.ply .obj .stl .off .gii .vtk .npz) and per-vertex fields, atomically.
+
+    Fields travel as PLY vertex properties (float32 / int32), VTK POINT_DATA,
+    GIFTI data arrays, NPZ arrays (exact), or a ``<file>.fields.npz`` sidecar for
+    OBJ, STL and OFF.  `binary` chooses binary PLY, STL and VTK (ASCII otherwise).
+    Saving OBJ/STL/OFF without fields removes a stale sidecar of the same name.
+    """
+    path = Path(path)
+    suffix = path.suffix.lower()
+    if suffix not in MESH_SUFFIXES:
+        raise SurfaceError(f"unsupported mesh format {suffix or '(none)'!r} for {path.name} "
+                           f"(supported: {' '.join(MESH_SUFFIXES)})")
+    if not path.parent.is_dir():
+        raise SurfaceError(f"folder does not exist: {path.parent}")
+    if path.is_dir():
+        raise SurfaceError(f"{path} is a directory")
+    fields = validate_fields(fields, surface.n_vertices)
+    v, f = surface.vertices, surface.faces
+    if suffix in (".ply", ".vtk", ".gii"):
+        _check_int32(fields, suffix[1:].upper())
+    with atomic_path(path) as tmp, open(tmp, "wb") as fh:
+        if suffix == ".ply":
+            write_ply(fh, v, f, fields, binary=binary)
+        elif suffix == ".vtk":
+            write_vtk(fh, v, f, fields, binary=binary)
+        elif suffix == ".gii":
+            fh.write(_gifti_bytes(surface, fields))
+        elif suffix == ".npz":
+            np.savez_compressed(fh, vertices=v, faces=f, **{f"fields/{k}": a for k, a in fields.items()})
+        elif suffix == ".stl":
+            write_stl(fh, v, f, binary=binary, normals=surface.face_normals)
+        elif suffix == ".obj":
+            write_obj(fh, v, f)
+        else:
+            write_off(fh, v, f)
+    if suffix not in _NATIVE_FIELDS:
+        side = sidecar_path(path)
+        if fields:
+            save_fields(side, vertices=v, **{f"fields/{k}": a for k, a in fields.items()})
+        elif side.is_file():
+            side.unlink()
     return path
 
 
@@ -67,6 +357,11 @@ def save_fields(path, **arrays) -> Path:
 
 
 def load_fields(path) -> dict:
-    """Read arrays from an NPZ file without unpickling."""
-    with np.load(path, allow_pickle=False) as data:
-        return {k: data[k] for k in data.files}
+    """Read arrays from an NPZ file without unpickling; bad files raise SurfaceError."""
+    path = Path(path)
+    if not path.is_file():
+        raise SurfaceError(f"no such file: {path}")
+    try:
+        return _npz_arrays(path)
+    except SurfaceError as exc:
+        raise SurfaceError(f"{path.name}: {exc}") from None

@@ -1,0 +1,198 @@
+"""OFF, OBJ and STL reading and writing with NumPy (no third-party loader).
+
+Each reader takes the whole file as ``bytes`` and returns ``(vertices (n, 3)
+float64, faces (m, 3) int64, fields {}, format name)``; counts found in headers
+are checked against the data present before anything is allocated.  Problems
+raise ``SurfaceError`` with a one-line message (``surfacekit.io`` adds the file
+name).  Format layouts are common practice: OFF (Geomview object file format),
+Wavefront OBJ (only ``v`` and ``f`` records are read; material and other files it
+names are never opened), STL (3D Systems; binary = 80-byte header, uint32
+triangle count, 50 bytes per triangle, little-endian).
+"""
+from __future__ import annotations
+
+import io as _io
+import re
+
+import numpy as np
+
+from .meshformats import fan_triangulate, split_cells, to_numbers
+from .surface import SurfaceError
+
+
+def _text_lines(data: bytes) -> list[bytes]:
+    """Non-empty lines with ``#`` comments removed."""
+    out = []
+    for line in data.splitlines():
+        line = line.split(b"#", 1)[0].strip()
+        if line:
+            out.append(line)
+    return out
+
+
+def _rows(lines: list[bytes], what: str) -> tuple[np.ndarray, np.ndarray]:
+    """Tokens of `lines` as float rows; returns (first 3 columns or full rows, tokens per line)."""
+    widths = np.fromiter((len(ln.split()) for ln in lines), dtype=np.int64, count=len(lines))
+    return to_numbers(b" ".join(lines).split(), np.float64, what), widths
+
+
+# ------------------------------------------------------------------------------ OFF
+def read_off(data: bytes):
+    """Parse ASCII OFF (also COFF/NOFF/CNOFF headers; colours and normals are ignored)."""
+    lines = _text_lines(data)
+    if not lines:
+        raise SurfaceError("OFF file holds no data")
+    head = lines[0].split()
+    if not head[0].endswith(b"OFF") or len(head[0]) > 8:
+        raise SurfaceError("not an OFF file (missing OFF magic line)")
+    if b"4" in head[0] or b"n" in head[0]:
+        raise SurfaceError(f"OFF variant {head[0].decode()!r} (4D or n-dimensional) not supported")
+    if len(head) > 1 and head[1] == b"BINARY":
+        raise SurfaceError("binary OFF is not supported")
+    rest = head[1:] if len(head) > 1 else (lines[1].split() if len(lines) > 1 else [])
+    body = 1 if len(head) > 1 else 2
+    counts = to_numbers(rest[:2], np.int64, "OFF counts") if len(rest) >= 2 else None
+    if counts is None or counts.min() < 0:
+        raise SurfaceError("OFF counts line is missing or negative")
+    nv, nf = int(counts[0]), int(counts[1])
+    if nv + nf > len(lines) - body:
+        raise SurfaceError(f"OFF header declares {nv} vertices and {nf} faces but the file "
+                           f"has only {len(lines) - body} data lines")
+    if nf == 0:
+        raise SurfaceError("OFF file has no faces (point cloud, not a surface)")
+    vals, widths = _rows(lines[body: body + nv], "OFF vertices")
+    if widths.min(initial=3) < 3:
+        raise SurfaceError("OFF vertex line with fewer than 3 coordinates")
+    starts = np.cumsum(widths) - widths
+    vertices = vals[starts[:, None] + np.arange(3)]
+    fvals, fwidths = _rows(lines[body + nv: body + nv + nf], "OFF faces")
+    if not np.all(fvals == np.round(fvals)):
+        raise SurfaceError("OFF face line holds a non-integer index")
+    fstarts = np.cumsum(fwidths) - fwidths
+    counts = fvals[fstarts].astype(np.int64)
+    if np.any(counts < 0) or np.any(counts + 1 > fwidths):
+        raise SurfaceError("OFF face line has fewer indices than its count says")
+    # indices of each face: positions fstart+1 .. fstart+count (extra colour values dropped)
+    pick = np.repeat(fstarts + 1, counts) + (np.arange(counts.sum()) -
+                                            np.repeat(np.cumsum(counts) - counts, counts))
+    faces = fan_triangulate(counts, fvals[pick].astype(np.int64))
+    return vertices, faces, {}, "off"
+
+
+def write_off(fh, vertices, faces):
+    buf = _io.StringIO()
+    buf.write(f"OFF\n{len(vertices)} {len(faces)} 0\n")
+    np.savetxt(buf, vertices, fmt="%.17g")
+    np.savetxt(buf, np.asarray(faces, np.int64), fmt="3 %d %d %d")
+    fh.write(buf.getvalue().encode("ascii"))
+
+
+# ------------------------------------------------------------------------------ OBJ
+def read_obj(data: bytes):
+    """Parse Wavefront OBJ ``v`` and ``f`` records (``f a/b/c``, negative indices, polygons)."""
+    lines = _text_lines(data)
+    kinds = [ln.split(None, 1)[0] for ln in lines]
+    is_v = np.array([k == b"v" for k in kinds], dtype=bool)
+    is_f = np.array([k == b"f" for k in kinds], dtype=bool)
+    if not is_v.any():
+        raise SurfaceError("OBJ file has no vertex ('v') records")
+    if not is_f.any():
+        raise SurfaceError("OBJ file has no face ('f') records (point cloud, not a surface)")
+    v_lines = [lines[i][1:] for i in np.flatnonzero(is_v)]
+    vals, widths = _rows(v_lines, "OBJ vertices")
+    if widths.min() < 3:
+        raise SurfaceError("OBJ 'v' record with fewer than 3 coordinates")
+    starts = np.cumsum(widths) - widths
+    vertices = vals[starts[:, None] + np.arange(3)]
+    f_idx = np.flatnonzero(is_f)
+    # vertices defined before each face line, for relative (negative) indices
+    n_before = np.cumsum(is_v)[f_idx]
+    f_tokens = [ln.split()[1:] for ln in (lines[i] for i in f_idx)]
+    counts = np.fromiter((len(t) for t in f_tokens), dtype=np.int64, count=len(f_tokens))
+    flat = to_numbers([tok.split(b"/", 1)[0] for t in f_tokens for tok in t], np.int64, "OBJ faces")
+    base = np.repeat(n_before, counts)
+    if np.any(flat == 0):
+        raise SurfaceError("OBJ face index 0 (indices start at 1)")
+    flat = np.where(flat < 0, base + flat, flat - 1)
+    return vertices, fan_triangulate(counts, flat), {}, "obj"
+
+
+def write_obj(fh, vertices, faces):
+    buf = _io.StringIO()
+    buf.write("# written by surfacekit\n")
+    np.savetxt(buf, vertices, fmt="v %.17g %.17g %.17g")
+    np.savetxt(buf, np.asarray(faces, np.int64) + 1, fmt="f %d %d %d")
+    fh.write(buf.getvalue().encode("ascii"))
+
+
+# ------------------------------------------------------------------------------ STL
+_STL_DTYPE = np.dtype([("normal", "<f4", (3,)), ("v", "<f4", (3, 3)), ("attr", "<u2")])
+
+
+def _weld(corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Merge exactly equal corner positions; vertices keep their first-appearance order."""
+    if not np.all(np.isfinite(corners)):
+        kind = "NaN" if np.isnan(corners).any() else "infinite"
+        raise SurfaceError(f"{kind} vertex coordinates in STL triangles")
+    uniq, first, inverse = np.unique(corners, axis=0, return_index=True, return_inverse=True)
+    order = np.argsort(first, kind="stable")
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    return uniq[order], rank[inverse.ravel()].reshape(-1, 3)
+
+
+def read_stl(data: bytes):
+    """Parse binary or ASCII STL; identical corner positions are welded into shared vertices."""
+    size = len(data)
+    looks_ascii = data.lstrip()[:5].lower() == b"solid"
+    if size >= 84:
+        n = int(np.frombuffer(data, "<u4", 1, 80)[0])
+        expected = 84 + 50 * n
+        if size == expected:
+            if n == 0:
+                raise SurfaceError("binary STL holds no triangles")
+            tri = np.frombuffer(data, _STL_DTYPE, n, 84)
+            vertices, faces = _weld(tri["v"].reshape(-1, 3).astype(np.float64))
+            return vertices, faces, {}, "stl-binary"
+    if looks_ascii:
+        return _read_stl_ascii(data)
+    if size < 84:
+        raise SurfaceError(f"too short for a binary STL ({size} bytes, need at least 84)")
+    if size < expected:
+        raise SurfaceError(f"truncated binary STL: header says {n} triangles ({expected} bytes) "
+                           f"but the file has {size} bytes")
+    raise SurfaceError(f"binary STL has {size - expected} unexpected bytes after {n} triangles")
+
+
+def _read_stl_ascii(data: bytes):
+    found = re.findall(rb"vertex\s+(\S+)\s+(\S+)\s+(\S+)", data, flags=re.IGNORECASE)
+    if not found:
+        raise SurfaceError("ASCII STL holds no triangles ('vertex' records)")
+    if len(found) % 3:
+        raise SurfaceError(f"ASCII STL has {len(found)} vertex records, not a multiple of 3")
+    n_facets = len(re.findall(rb"endfacet", data, flags=re.IGNORECASE))
+    if n_facets * 3 != len(found):
+        raise SurfaceError(f"ASCII STL has {n_facets} complete facets for {len(found)} vertices")
+    corners = to_numbers([t for row in found for t in row], np.float64, "ASCII STL vertices")
+    vertices, faces = _weld(corners.reshape(-1, 3))
+    return vertices, faces, {}, "stl-ascii"
+
+
+def write_stl(fh, vertices, faces, *, binary: bool = True, normals=None):
+    """Write STL; `normals` (m, 3) are the face normals (zero for degenerate faces)."""
+    tri = vertices[np.asarray(faces)]
+    if binary:
+        header = b"binary STL written by surfacekit".ljust(80, b" ")
+        rec = np.zeros(len(faces), _STL_DTYPE)
+        rec["normal"] = normals
+        rec["v"] = tri
+        fh.write(header + np.uint32(len(faces)).tobytes() + rec.tobytes())
+        return
+    buf = _io.StringIO()
+    buf.write("solid surfacekit\n")
+    table = np.concatenate([normals, tri.reshape(-1, 9)], axis=1)
+    np.savetxt(buf, table, fmt="facet normal %.9g %.9g %.9g\n outer loop\n"
+               "  vertex %.17g %.17g %.17g\n  vertex %.17g %.17g %.17g\n  vertex %.17g %.17g %.17g\n"
+               " endloop\nendfacet")
+    buf.write("endsolid surfacekit\n")
+    fh.write(buf.getvalue().encode("ascii"))
