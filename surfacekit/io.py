@@ -12,6 +12,7 @@ never clobbers an existing one.
 """
 from __future__ import annotations
 
+import io
 import os
 import re
 import tempfile
@@ -90,11 +91,12 @@ def _read_bytes(path: Path) -> bytes:
 
 def _sniff(data: bytes, kind: str) -> None:
     """Refuse files whose leading bytes say they are something else."""
+    article = "an" if kind[0] in "AEFHILMNORSX" else "a"  # as the letters are spoken
     for magic, what in _MAGIC:
         if data.startswith(magic):
-            raise SurfaceError(f"file is {what}, not a {kind} mesh")
+            raise SurfaceError(f"file is {what}, not {article} {kind} mesh")
     if len(data) > 348 and data[344:348] in (b"n+1\x00", b"ni1\x00"):
-        raise SurfaceError(f"file is a NIfTI volume, not a {kind} mesh (use from_segmentation)")
+        raise SurfaceError(f"file is a NIfTI volume, not {article} {kind} mesh (use from_segmentation)")
 
 
 def _check_npz(path: Path) -> None:
@@ -157,7 +159,9 @@ def _read_gifti(data: bytes):
     if declared > _MAX_EXPANSION * len(data) + _EXPANSION_ALLOWANCE:
         raise SurfaceError("GIFTI arrays claim far more data than the file holds (refused)")
     try:
-        img = nib.gifti.GiftiImage.from_bytes(data)
+        # nibabel's default 35 MB expat buffer would dominate the memory of small files.
+        file_map = nib.gifti.GiftiImage.make_file_map({"image": io.BytesIO(data)})
+        img = nib.gifti.GiftiImage.from_file_map(file_map, buffer_size=1 << 20)
         arrays = [(da.intent, nib.nifti1.intent_codes.label[da.intent], da.meta.get("Name"),
                    np.asarray(da.data)) for da in img.darrays]
     except Exception as exc:  # nibabel/expat raise many types on corrupt XML or data
@@ -224,7 +228,7 @@ def load_with_fields(path) -> tuple[Surface, dict]:
         raise SurfaceError(f"unsupported mesh format {suffix or '(none)'!r} for {path.name} "
                            f"(supported: {' '.join(MESH_SUFFIXES)})")
     data = _read_bytes(path)
-    kind = suffix[1:].upper()
+    kind = {".gii": "GIFTI"}.get(suffix, suffix[1:].upper())
     try:
         if suffix == ".npz":
             if not data.startswith(b"PK"):

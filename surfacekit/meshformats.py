@@ -301,8 +301,10 @@ def _binary_element(data, pos, name, count, props, endian):
                 cols[p[0]][r] = v
                 continue
             ln, isz = int(v), np.dtype(p[1]).itemsize
-            if ln < 0 or pos + ln * isz > len(data):
+            if ln < 0:
                 raise SurfaceError(f"PLY {name} row {r} has a bad list length {ln}")
+            if pos + ln * isz > len(data):
+                raise SurfaceError(f"PLY {name} data ends early at row {r} of {count} (truncated?)")
             lists[p[0]][0].append(ln)
             lists[p[0]][1].append(np.frombuffer(data, endian + p[1], ln, pos))
             pos += ln * isz
