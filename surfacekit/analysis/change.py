@@ -193,8 +193,8 @@ def measure_change(baseline: Surface, followup: Surface, corr=None, *,
        growing region does not bias the pose.
     3. Sub-vertex mapped points: the vertex-level displacement field (matched
        follow-up vertex minus baseline vertex) is smoothed by implicit heat
-       diffusion over ``smoothing`` mm (default: the baseline mean edge length)
-       to remove the resolution staircase, and each displaced baseline vertex is
+       diffusion over ``smoothing`` mm (default: twice the baseline mean edge
+       length) to remove the resolution staircase, and each displaced baseline vertex is
        projected onto the closest point of the follow-up triangles touching the
        `rings`-ring of its matched vertex (Ericson 2005, §5.1.5).  This keeps the
        tangential part of the correspondence and makes the normal part exact.
@@ -240,7 +240,7 @@ def measure_change(baseline: Surface, followup: Surface, corr=None, *,
     moved = followup.copy_with(vertices=pose.apply(followup.vertices))
 
     # 3. sub-vertex mapped points
-    sigma = baseline.mean_edge_length if smoothing is None else float(smoothing)
+    sigma = 2.0 * baseline.mean_edge_length if smoothing is None else float(smoothing)
     raw = moved.vertices[s2t] - baseline.vertices
     smooth = geo.heat_smooth(baseline, raw, sigma)
     mapped = geo.project_near(baseline.vertices + smooth, moved, s2t, rings=rings)
