@@ -1,0 +1,171 @@
+"""Report panels and figures for the main results: a correspondence, a change, a cohort test.
+
+Shared by the command line and the demo; the HTML assembly lives in
+:mod:`surfacekit.report`, the matplotlib drawing in :mod:`surfacekit.report_figures`.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from . import report_figures as figs
+from .report import ReportLayer, ReportPanel
+from .surface import Surface
+
+
+def colour_fields(surface: Surface) -> tuple[np.ndarray, np.ndarray]:
+    """Two smooth colour fields to show a correspondence by transfer.
+
+    Returns the position along the surface's longest principal axis, scaled to
+    [0, 1], ``(n,)``, and the angle around that axis in degrees ``(n,)`` in
+    [-180, 180) (cyclic).  Principal axes: eigenvectors of the vertex
+    covariance (common practice); signs fixed by the third moment so the
+    fields do not depend on the mesh's pose.
+    """
+    v = surface.vertices - surface.vertices.mean(axis=0)
+    _, vecs = np.linalg.eigh(np.cov(v.T))
+    axes = vecs[:, ::-1]
+    proj = v @ axes
+    signs = np.sign(np.sum(proj**3, axis=0))
+    signs[signs == 0] = 1.0
+    proj = proj * signs
+    along = (proj[:, 0] - proj[:, 0].min()) / max(float(np.ptp(proj[:, 0])), 1e-12)
+    around = np.degrees(np.arctan2(proj[:, 2], proj[:, 1]))
+    return along, around
+
+
+def map_distortion(source: Surface, target: Surface, source_to_target: np.ndarray) -> np.ndarray:
+    """Per-source-vertex metric distortion of a point map, ``(n_source,)``, log2 units.
+
+    Each mesh edge (a, b) of the source is mapped to the target points
+    (f(a), f(b)); the log2 of its length ratio is averaged over the edges at a
+    vertex.  0 = locally isometric, +1 = stretched twice.  Edge-length
+    distortion is a common practice measure for dense maps.
+    """
+    e = source.edges
+    f = np.asarray(source_to_target, dtype=np.int64)
+    len_s = np.linalg.norm(source.vertices[e[:, 0]] - source.vertices[e[:, 1]], axis=1)
+    len_t = np.linalg.norm(target.vertices[f[e[:, 0]]] - target.vertices[f[e[:, 1]]], axis=1)
+    floor = 1e-3 * float(np.median(len_s))
+    ratio = np.log2(np.maximum(len_t, floor) / np.maximum(len_s, floor))
+    n = source.n_vertices
+    total = np.bincount(e[:, 0], ratio, n) + np.bincount(e[:, 1], ratio, n)
+    count = np.bincount(e[:, 0], minlength=n) + np.bincount(e[:, 1], minlength=n)
+    return total / np.maximum(count, 1)
+
+
+def correspondence_layers(source: Surface, target: Surface, corr) -> list[ReportLayer]:
+    """Layers showing a correspondence: colour fields transferred, confidence, distortion."""
+    along, around = colour_fields(source)
+    layers = [
+        ReportLayer("correspondence: position along the long axis",
+                    [along, np.asarray(corr.transfer(along), dtype=float)], kind="sequential",
+                    description="A colour field painted on the first surface and carried to the "
+                                "second by the map: matching colours mean matched points."),
+        ReportLayer("correspondence: angle around the long axis",
+                    [around, np.asarray(corr.transfer(around), dtype=float)], kind="cyclic",
+                    unit="degrees", limits=(-180.0, 180.0),
+                    description="A cyclic colour field carried by the map; twists or flips of the "
+                                "map show as rotated colours."),
+    ]
+    conf_s = getattr(corr, "source_confidence", None)
+    conf_t = getattr(corr, "confidence", None)
+    if conf_s is not None or conf_t is not None:
+        layers.append(ReportLayer("map confidence", [conf_s, conf_t], kind="sequential",
+                                  limits=(0.0, 1.0),
+                                  description="Per-vertex confidence of the map in [0, 1]."))
+    layers.append(ReportLayer("map distortion (edge stretch)",
+                              [map_distortion(source, target, corr.source_to_target), None],
+                              kind="diverging", unit="log2",
+                              description="Log2 length ratio of mapped edges: 0 is isometric, "
+                                          "red is stretched, blue compressed."))
+    return layers
+
+
+def correspondence_panel(source_name: str, source: Surface, target_name: str, target: Surface,
+                         corr) -> ReportPanel:
+    return ReportPanel(f"Correspondence {source_name} → {target_name}",
+                       [(source_name, source), (target_name, target)],
+                       correspondence_layers(source, target, corr),
+                       note="Drag to rotate, scroll to zoom; both surfaces are shown in their own "
+                            "pose, side by side.")
+
+
+def change_panel(baseline_name: str, baseline: Surface, followup_name: str, followup: Surface,
+                 corr, change, labels: np.ndarray | None = None,
+                 label_names: dict[int, str] | None = None) -> ReportPanel:
+    """Change maps on the baseline (and carried to the follow-up) plus the map's own layers."""
+    nd = np.asarray(change.normal_displacement, dtype=float)
+    layers = [
+        ReportLayer("normal displacement", [nd, np.asarray(corr.transfer(nd), dtype=float)],
+                    kind="diverging", unit="mm",
+                    description="Movement along the outward normal from baseline to follow-up "
+                                "after rigid alignment: red outward (growth), blue inward."),
+        ReportLayer("local area change", [np.asarray(change.log_area_ratio, dtype=float), None],
+                    kind="diverging", unit="log ratio",
+                    description="Log of follow-up over baseline area around each vertex."),
+        ReportLayer("displacement magnitude",
+                    [np.linalg.norm(np.asarray(change.displacement, dtype=float), axis=1), None],
+                    kind="sequential", unit="mm",
+                    description="Length of the displacement after rigid alignment."),
+    ]
+    if labels is not None:
+        layers.append(ReportLayer("regions", [np.asarray(labels), None], kind="labels",
+                                  label_names=label_names,
+                                  description="Regions transferred from the labelled template."))
+    layers += correspondence_layers(baseline, followup, corr)
+    rigid = getattr(change, "rigid", None)
+    shown = followup
+    if rigid is not None:  # show the follow-up in the baseline's frame, as the change is measured
+        r = np.asarray(rigid, dtype=float)
+        shown = followup.copy_with(vertices=followup.vertices @ r[:3, :3].T + r[:3, 3])
+    return ReportPanel(f"Change {baseline_name} → {followup_name}",
+                       [(baseline_name, baseline), (followup_name, shown)], layers,
+                       note="Change maps use a diverging scale centred on zero (white = no "
+                            "change); the follow-up is shown rigidly aligned to the baseline.")
+
+
+def change_figures(baseline: Surface, change, regional: list[dict] | None = None,
+                   corr=None) -> dict:
+    """PNG figures (matplotlib) of a change result, keyed by caption."""
+    nd = np.asarray(change.normal_displacement, dtype=float)
+    out = {
+        "Normal displacement on the baseline (mm)":
+            figs.surface_figure(baseline, nd, title="normal displacement", kind="diverging",
+                                unit="mm"),
+        "Distribution of normal displacement (area-weighted)":
+            figs.histogram_figure(nd, title="normal displacement", unit="mm",
+                                  weights=baseline.vertex_areas, centre_zero=True),
+    }
+    if regional:
+        key = next((k for k in regional[0] if "normal" in k and "mean" in k), None)
+        name_key = next((k for k in ("name", "region", "label") if k in regional[0]), None)
+        if key and name_key:
+            out["Mean normal displacement per region"] = figs.bar_figure(
+                [r[name_key] for r in regional], [r[key] for r in regional],
+                title="mean normal displacement", unit="mm")
+    if corr is not None and getattr(corr, "confidence", None) is not None:
+        out["Map confidence (follow-up vertices)"] = figs.histogram_figure(
+            corr.confidence, title="map confidence")
+    return out
+
+
+def group_test_panel(template_name: str, template: Surface, result, mean_difference=None,
+                     labels=None, label_names=None) -> ReportPanel:
+    """Vertex-wise group statistics on the template: t, corrected p-values, mean difference."""
+    layers = [ReportLayer("t statistic", [np.asarray(result.t, dtype=float)], kind="diverging",
+                          description="Vertex-wise two-sample t statistic (second group minus first).")]
+    if mean_difference is not None:
+        layers.append(ReportLayer("mean difference", [np.asarray(mean_difference, dtype=float)],
+                                  kind="diverging", unit="mm",
+                                  description="Difference of group means."))
+    for attr, title in (("p_fwer", "-log10 p (FWER, max-T permutation)"),
+                        ("q_fdr", "-log10 q (FDR, Benjamini-Hochberg)")):
+        value = getattr(result, attr, None)
+        if value is not None:
+            layers.append(ReportLayer(title, [-np.log10(np.clip(np.asarray(value, float), 1e-12, 1))],
+                                      kind="sequential", limits=(0.0, 3.0),
+                                      description="1.3 corresponds to 0.05."))
+    if labels is not None:
+        layers.append(ReportLayer("regions", [np.asarray(labels)], kind="labels",
+                                  label_names=label_names, description="Template regions."))
+    return ReportPanel(f"Group statistics on {template_name}", [(template_name, template)], layers)

@@ -1,0 +1,89 @@
+"""Open an HTML report in headless Chromium (Debian's package) through Playwright.
+
+Used by tests/test_browser.py and docs/make_report_screenshot.py.  No browser is
+downloaded: Playwright drives the system ``chromium`` binary.  WebGL runs on
+SwiftShader (software rendering), as there is no GPU.
+"""
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+         "--disable-component-update", "--disable-sync", "--no-first-run",
+         "--use-gl=angle", "--use-angle=swiftshader", "--enable-unsafe-swiftshader"]
+
+
+def chromium_path() -> str | None:
+    for name in ("chromium", "chromium-browser"):
+        found = shutil.which(name)
+        if found:
+            return found
+    return None
+
+
+def why_no_browser() -> str | None:
+    """None when a browser test can run, else the reason it cannot."""
+    try:
+        import playwright.sync_api  # noqa: F401
+    except ImportError:
+        return "python package 'playwright' is not installed (pip install -e '.[test]')"
+    if chromium_path() is None:
+        return "no chromium binary on PATH (Debian: apt-get install chromium)"
+    return None
+
+
+def render(html_path: Path, screenshot: Path | None = None, *, width: int = 1280,
+           height: int = 1800, select: tuple[str, int] | None = None) -> dict:
+    """Load a report, wait for its 3D views, and collect what a person would see.
+
+    Returns ``{"console": [(type, text)], "page_errors": [...], "requests": [...],
+    "rendered": int, "canvas_png": bytes, "page_png": bytes}``; ``requests`` lists
+    every URL the page asked for other than the file itself (should be none).
+    """
+    from playwright.sync_api import sync_playwright
+
+    out: dict = {"console": [], "page_errors": [], "requests": []}
+    url = Path(html_path).resolve().as_uri()
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=chromium_path(), args=FLAGS)
+        try:
+            page = browser.new_page(viewport={"width": width, "height": height})
+            page.on("console", lambda m: out["console"].append((m.type, m.text)))
+            page.on("pageerror", lambda e: out["page_errors"].append(str(e)))
+
+            def _route(route):
+                if route.request.url != url:
+                    out["requests"].append(route.request.url)
+                    return route.abort()
+                return route.continue_()
+
+            page.route("**/*", _route)
+            page.goto(url, wait_until="load", timeout=120_000)
+            page.wait_for_function("document.body.getAttribute('data-sk-rendered') !== null",
+                                   timeout=120_000)
+            if select is not None:
+                page.select_option(f"#{select[0]}-select", str(select[1]))
+            page.wait_for_timeout(1500)
+            out["rendered"] = int(page.get_attribute("body", "data-sk-rendered") or 0)
+            plot = page.locator(".plot3d").first
+            plot.scroll_into_view_if_needed()
+            out["canvas_png"] = plot.screenshot()
+            out["page_png"] = page.screenshot(full_page=False)
+            if screenshot is not None:
+                Path(screenshot).write_bytes(out["page_png"])
+        finally:
+            browser.close()
+    return out
+
+
+def pixel_spread(png: bytes) -> tuple[float, int]:
+    """(standard deviation of the pixel values, number of distinct colours) of a PNG."""
+    import io
+
+    import numpy as np
+    from matplotlib import image
+
+    img = image.imread(io.BytesIO(png), format="png")[..., :3]
+    flat = (img.reshape(-1, 3) * 255).astype(int)
+    return float(img.std()), len(np.unique(flat[:, 0] * 65536 + flat[:, 1] * 256 + flat[:, 2]))
