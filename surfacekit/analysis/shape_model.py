@@ -176,10 +176,10 @@ class ShapeModel:
         m_max = min(s - 2, self.n_modes if max_modes is None else int(max_modes))
         errors = np.zeros(m_max)
         for i in range(s):
-            rest = np.delete(x, i, axis=0)
-            model = shape_model(rest, align=False)
-            d = (x[i] - model.mean).ravel()
-            phi = model.modes[:m_max].reshape(m_max, -1)
+            rest = np.delete(x, i, axis=0).reshape(s - 1, -1)
+            mean = rest.mean(axis=0)
+            _, phi = _pca(rest - mean, m_max)
+            d = x[i].ravel() - mean
             recon = np.cumsum(phi.T * (phi @ d), axis=1).T  # (m_max, 3n): rank-M projections
             err = d[None, :] - recon
             errors += np.linalg.norm(err.reshape(m_max, -1, 3), axis=2).mean(axis=1)
@@ -229,15 +229,29 @@ def shape_model(shapes, *, n_modes: int | None = None, align: bool = True,
         x = generalized_procrustes(x, scaling=scaling).aligned
     s, n, _ = x.shape
     mean = x.mean(axis=0)
-    data = (x - mean).reshape(s, -1)
-    _, sv, vt = np.linalg.svd(data, full_matrices=False)
     k_max = s - 1
     k = k_max if n_modes is None else min(int(n_modes), k_max)
     if k < 1:
         raise ValueError(f"n_modes must be >= 1, got {n_modes}")
-    variances = sv[:k] ** 2 / (s - 1)
-    modes = vt[:k]
-    # deterministic sign: the largest-magnitude coordinate of each mode is positive
-    signs = np.sign(modes[np.arange(k), np.abs(modes).argmax(axis=1)])
-    modes = modes * np.where(signs == 0, 1.0, signs)[:, None]
+    variances, modes = _pca((x - mean).reshape(s, -1), k)
     return ShapeModel(mean, modes.reshape(k, n, 3), variances, x)
+
+
+def _pca(centred: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Top-k sample variances (k,) and unit modes (k, d) of centred (s, d) data, s << d.
+
+    Through the (s, s) Gram matrix (the "snapshot" form; Sirovich, Q. Appl. Math.
+    1987): its eigenvectors V give the modes ``Dᵀ V / sqrt(eigenvalue)``.
+    """
+    s = centred.shape[0]
+    gram = centred @ centred.T
+    evals, evecs = np.linalg.eigh(gram)
+    order = np.argsort(evals)[::-1][:k]
+    evals = np.maximum(evals[order], 0.0)
+    modes = (centred.T @ evecs[:, order]).T
+    norms = np.linalg.norm(modes, axis=1)
+    modes = np.divide(modes, norms[:, None], out=np.zeros_like(modes), where=norms[:, None] > 0)
+    # deterministic sign: the largest-magnitude coordinate of each mode is positive
+    signs = np.sign(modes[np.arange(len(order)), np.abs(modes).argmax(axis=1)])
+    modes = modes * np.where(signs == 0, 1.0, signs)[:, None]
+    return evals / (s - 1), modes
