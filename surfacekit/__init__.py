@@ -65,6 +65,10 @@ def __getattr__(name: str):
         module = importlib.import_module(f".{_LAZY[name]}", __name__)
         value = getattr(module, name)
         globals()[name] = value
+        # importing submodule `prepare` binds the module to sk.prepare; the function must win
+        short = _LAZY[name]
+        if _LAZY.get(short) == short and hasattr(module, short):
+            globals()[short] = getattr(module, short)
         return value
     if name in _SUBMODULES:
         return importlib.import_module(f".{name}", __name__)

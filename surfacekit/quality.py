@@ -253,7 +253,7 @@ def quality_report(surface: Surface) -> QualityReport:
     n_dup_v = int(np.count_nonzero(rep_map != np.arange(s.n_vertices)))
     n_dup_f = int(duplicate_faces(f).sum())
     n_degen = int(degenerate_faces(v, f).sum())
-    n_nm_edges = int(len(s.non_manifold_edges))
+    n_nm_edges = len(s.non_manifold_edges)
     n_nm_vertices = int(np.count_nonzero(vertex_fans(f, s.n_vertices) > 1))
     n_incons = inconsistent_edges(f)
     loops = s.boundary_loops
@@ -304,7 +304,7 @@ def quality_report(surface: Surface) -> QualityReport:
 
     return QualityReport(
         n_vertices=s.n_vertices, n_faces=s.n_faces, n_components=int(s.n_components),
-        n_boundary_loops=len(loops), n_boundary_edges=int(len(s.boundary_edges)),
+        n_boundary_loops=len(loops), n_boundary_edges=len(s.boundary_edges),
         n_non_manifold_edges=n_nm_edges, n_non_manifold_vertices=n_nm_vertices,
         n_duplicate_vertices=n_dup_v, n_duplicate_faces=n_dup_f, n_degenerate_faces=n_degen,
         n_unreferenced_vertices=int(s.n_unreferenced_vertices), n_inconsistent_edges=n_incons,

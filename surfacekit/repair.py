@@ -10,8 +10,14 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order, connected_components
 
-from .quality import (coincident_vertex_map, corner_fan_labels, degenerate_faces,
-                      duplicate_faces, edge_pairs, inconsistent_edges)
+from .quality import (
+    coincident_vertex_map,
+    corner_fan_labels,
+    degenerate_faces,
+    duplicate_faces,
+    edge_pairs,
+    inconsistent_edges,
+)
 from .surface import Surface, SurfaceError
 
 
@@ -79,7 +85,7 @@ def remove_non_manifold_edges(v: np.ndarray, f: np.ndarray):
     """
     m0 = len(f)
     for round_ in range(3):
-        he, inverse, counts, a, b = edge_pairs(f)
+        _, inverse, counts, a, b = edge_pairs(f)
         bad = counts > 2
         if not bad.any():
             break

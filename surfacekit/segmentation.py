@@ -31,7 +31,7 @@ def _load_volume(source: Any, affine: Any, spacing: Any) -> tuple[Any, np.ndarra
             raise SurfaceError(f"no such label volume: {path}")
         try:
             img = nib.funcs.squeeze_image(nib.load(str(path)))
-        except Exception as exc:  # nibabel raises several types on bad files
+        except Exception as exc:  # noqa: BLE001 - nibabel raises many types on bad files
             raise SurfaceError(f"cannot read {path.name} as NIfTI: {exc}") from None
         data = img.dataobj  # a proxy: slabs are read on demand
         base = np.asarray(img.affine, dtype=np.float64)
