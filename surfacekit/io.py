@@ -15,8 +15,10 @@ from __future__ import annotations
 import io
 import os
 import re
+import struct
 import tempfile
 import zipfile
+import zlib
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -118,7 +120,8 @@ def _check_npz(path: Path) -> None:
                                        "(pickle; refused)")
                 if int(np.prod(shape, dtype=np.float64)) * dtype.itemsize > info.file_size:
                     raise SurfaceError(f"NPZ member {info.filename!r} claims more data than it holds")
-    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, NotImplementedError) as exc:
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, NotImplementedError, OSError,
+            struct.error, zlib.error) as exc:
         raise SurfaceError(f"not a readable NPZ (zip) archive: {str(exc)[:80]}") from None
     except ValueError as exc:
         if isinstance(exc, SurfaceError):
@@ -131,7 +134,7 @@ def _npz_arrays(path: Path) -> dict:
     try:
         with np.load(path, allow_pickle=False) as data:
             return {k: data[k] for k in data.files}
-    except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
+    except (ValueError, OSError, EOFError, zipfile.BadZipFile, zlib.error) as exc:
         raise SurfaceError(f"cannot read NPZ: {str(exc)[:80]}") from None
 
 
@@ -164,7 +167,9 @@ def _read_gifti(data: bytes):
         img = nib.gifti.GiftiImage.from_file_map(file_map, buffer_size=1 << 20)
         arrays = [(da.intent, nib.nifti1.intent_codes.label[da.intent], da.meta.get("Name"),
                    np.asarray(da.data)) for da in img.darrays]
-    except Exception as exc:  # nibabel/expat raise many types on corrupt XML or data
+    except MemoryError:
+        raise
+    except Exception as exc:  # noqa: BLE001  nibabel/expat raise many types on corrupt XML
         raise SurfaceError(f"cannot parse GIFTI: {type(exc).__name__}: {str(exc)[:80]}") from None
     points = [a for a in arrays if a[1] == "pointset"]
     tris = [a for a in arrays if a[1] == "triangle"]
@@ -182,7 +187,7 @@ def _read_gifti(data: bytes):
 
 _READERS = {".ply": read_ply, ".obj": read_obj, ".stl": read_stl, ".off": read_off,
             ".vtk": read_vtk, ".gii": _read_gifti}
-_PARSE_ERRORS = (ValueError, IndexError, KeyError, OverflowError, MemoryError, UnicodeDecodeError)
+_PARSE_ERRORS = (ValueError, IndexError, KeyError, OverflowError, UnicodeDecodeError)
 
 
 def _align_sidecar(vertices: np.ndarray, side: dict, name: str) -> dict:
@@ -354,9 +359,8 @@ def save(surface: Surface, path, fields: dict | None = None, *, binary: bool = T
 def save_fields(path, **arrays) -> Path:
     """Write named arrays to an NPZ file atomically."""
     path = Path(path)
-    with atomic_path(path, suffix=".npz") as tmp:
-        with open(tmp, "wb") as fh:
-            np.savez_compressed(fh, **{k: np.asarray(v) for k, v in arrays.items()})
+    with atomic_path(path, suffix=".npz") as tmp, open(tmp, "wb") as fh:
+        np.savez_compressed(fh, **{k: np.asarray(v) for k, v in arrays.items()})
     return path
 
 

@@ -83,6 +83,18 @@ def split_cells(data: np.ndarray, n_cells: int) -> tuple[np.ndarray, np.ndarray]
     return counts, data[keep]
 
 
+def as_integers(values: np.ndarray, code: str, what: str) -> np.ndarray:
+    """Cast numbers to integer type `code`, refusing non-finite, fractional or out-of-range ones."""
+    values = np.asarray(values)
+    if values.dtype.kind == "f":
+        info = np.iinfo(code)
+        ok = np.isfinite(values) & (values == np.round(values)) & \
+            (values >= info.min) & (values <= info.max)
+        if not ok.all():
+            raise SurfaceError(f"{what} holds a value that is not a {code} integer")
+    return values.astype(code)
+
+
 def to_numbers(tokens: list, dtype, what: str) -> np.ndarray:
     """Convert ASCII tokens to numbers; a bad token raises SurfaceError naming `what`."""
     try:
@@ -95,7 +107,7 @@ def group_fields(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     """Group ``name_x/_y/_z`` columns into (n, 3) and ``name_0.._k`` into (n, k+1)."""
     out: dict[str, np.ndarray] = {}
     used: set[str] = set()
-    for col in columns:
+    for col, values in columns.items():
         if col in used:
             continue
         base, _, tail = col.rpartition("_")
@@ -111,7 +123,7 @@ def group_fields(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
             out[base] = np.stack([columns[c] for c in names], axis=1)
             used.update(names)
         else:
-            out[col] = columns[col]
+            out[col] = values
     return out
 
 
@@ -341,15 +353,15 @@ def read_ply(data: bytes):
         else:
             cols, lists, pos = _binary_element(data, pos, name, count, props, endian)
         if name == "vertex" and vertex_cols is None:
-            vertex_cols = {p[0]: cols[p[0]].astype(p[1]) for p in props if p[2] is None}
+            vertex_cols = {p[0]: (cols[p[0]].astype(p[1]) if p[1][0] == "f" else
+                                  as_integers(cols[p[0]], p[1], f"PLY vertex property {p[0]}"))
+                           for p in props if p[2] is None}
         elif name == "face" and faces is None:
             idx = [entry for entry in (lists or []) if entry[0] in ("vertex_indices", "vertex_index")]
             if not idx:
                 raise SurfaceError("PLY face element has no vertex_indices list")
             _, counts, flat = idx[0]
-            if not np.all(np.asarray(flat) == np.round(flat)):
-                raise SurfaceError("PLY face indices are not integers")
-            faces = fan_triangulate(counts, np.asarray(flat).astype(np.int64))
+            faces = fan_triangulate(counts, as_integers(flat, "i8", "PLY face indices"))
     missing = [a for a in "xyz" if a not in vertex_cols]
     if missing:
         raise SurfaceError(f"PLY vertex element lacks coordinate(s) {', '.join(missing)}")

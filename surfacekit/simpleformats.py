@@ -16,7 +16,7 @@ import re
 
 import numpy as np
 
-from .meshformats import fan_triangulate, split_cells, to_numbers
+from .meshformats import as_integers, fan_triangulate, to_numbers
 from .surface import SurfaceError
 
 
@@ -66,16 +66,14 @@ def read_off(data: bytes):
     starts = np.cumsum(widths) - widths
     vertices = vals[starts[:, None] + np.arange(3)]
     fvals, fwidths = _rows(lines[body + nv: body + nv + nf], "OFF faces")
-    if not np.all(fvals == np.round(fvals)):
-        raise SurfaceError("OFF face line holds a non-integer index")
     fstarts = np.cumsum(fwidths) - fwidths
-    counts = fvals[fstarts].astype(np.int64)
+    counts = as_integers(fvals[fstarts], "i8", "OFF face vertex count")
     if np.any(counts < 0) or np.any(counts + 1 > fwidths):
         raise SurfaceError("OFF face line has fewer indices than its count says")
     # indices of each face: positions fstart+1 .. fstart+count (extra colour values dropped)
     pick = np.repeat(fstarts + 1, counts) + (np.arange(counts.sum()) -
                                             np.repeat(np.cumsum(counts) - counts, counts))
-    faces = fan_triangulate(counts, fvals[pick].astype(np.int64))
+    faces = fan_triangulate(counts, as_integers(fvals[pick], "i8", "OFF face indices"))
     return vertices, faces, {}, "off"
 
 

@@ -158,8 +158,9 @@ if __name__ == "__main__":  # print the table of input -> message
     import tempfile
     from pathlib import Path
 
-    import surfacekit as sk
     from test_malformed import materialise
+
+    import surfacekit as sk
 
     with tempfile.TemporaryDirectory() as tmp:
         for case, name, data, _ in corpus():

@@ -13,9 +13,9 @@ from pathlib import Path
 import nibabel.gifti  # noqa: F401  imported here so module imports do not count as loader memory
 import numpy as np
 import pytest
+from malformed_corpus import corpus, stl_binary, tet_triangles
 
 import surfacekit as sk
-from malformed_corpus import corpus, stl_binary, tet_triangles
 
 CASES = corpus()
 
