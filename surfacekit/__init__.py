@@ -48,6 +48,7 @@ _LAZY = {
     "transfer_labels": "analysis", "generalized_procrustes": "analysis",
     "ShapeModel": "analysis", "shape_model": "analysis",
     "vertexwise_group_test": "analysis", "GroupTestResult": "analysis",
+    "spectral_distances": "analysis",
     # batch
     "run_cohort": "batch",
     # report

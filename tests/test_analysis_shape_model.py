@@ -108,3 +108,17 @@ def test_bad_shapes():
         sk.shape_model(np.zeros((1, 10, 3)))
     with pytest.raises(ValueError, match="NaN"):
         sk.generalized_procrustes(np.full((2, 5, 3), np.nan))
+
+
+def test_spectral_distances_between_subjects():
+    # Reuter, Wolter & Peinecke (2006): Shape-DNA is invariant to rigid motion and
+    # uniform scale, and separates different shapes; remeshing leaves a small residue.
+    kid_a, _ = sk.synthetic.organ_surface("kidney", 600, seed=0)
+    kid_b, _ = sk.synthetic.organ_surface("kidney", 800, seed=4)
+    kid_b = kid_b.copy_with(vertices=1.3 * kid_b.vertices @ sk.synthetic.random_rotation(2).T)
+    hip, _ = sk.synthetic.organ_surface("hippocampus", 600, seed=0)
+    d = sk.spectral_distances([kid_a, kid_b, hip], k=15)
+    np.testing.assert_allclose(d, d.T)
+    assert np.all(np.diag(d) == 0)
+    assert d[0, 1] < 0.2 * min(d[0, 2], d[1, 2])
+    assert d[0, 2] == pytest.approx(sk.shape_dna_distance(kid_a, hip, 15), rel=1e-9)

@@ -255,3 +255,34 @@ def _pca(centred: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     signs = np.sign(modes[np.arange(len(order)), np.abs(modes).argmax(axis=1)])
     modes = modes * np.where(signs == 0, 1.0, signs)[:, None]
     return evals / (s - 1), modes
+
+
+def spectral_distances(surfaces, k: int = 50, *, weighted: bool = True) -> np.ndarray:
+    """(s, s) pairwise Shape-DNA distances between subjects (no correspondence needed).
+
+    Each surface's first k area-normalised Laplace–Beltrami eigenvalues
+    (Reuter, Wolter & Peinecke, Computer-Aided Design 2006; ``sk.shape_dna``) are
+    computed once, then compared by ``sk.shape_dna_distance`` (dimensionless;
+    invariant to rigid motion, isometric bending and uniform scale).
+
+    Parameters
+    ----------
+    surfaces : sequence of Surface, or an (s, k) array of precomputed Shape-DNA rows
+    k : number of non-zero eigenvalues
+    weighted : divide the i-th difference by i (see ``sk.shape_dna_distance``)
+    """
+    from ..descriptors import shape_dna, shape_dna_distance
+
+    if isinstance(surfaces, np.ndarray) and surfaces.ndim == 2:
+        dna = np.asarray(surfaces, dtype=np.float64)
+    else:
+        surfaces = list(surfaces)
+        if len(surfaces) < 2:
+            raise ValueError(f"need at least 2 surfaces, got {len(surfaces)}")
+        dna = np.stack([shape_dna(s, k) for s in surfaces])
+    s = dna.shape[0]
+    out = np.zeros((s, s))
+    for i in range(s):
+        for j in range(i + 1, s):
+            out[i, j] = out[j, i] = shape_dna_distance(dna[i], dna[j], k, weighted=weighted)
+    return out
