@@ -167,7 +167,7 @@ def test_covariates_coded_for_the_group_test():
 def test_cohort_rows_failures_and_reference_values(cohort):
     """Failure rows carry a one-line error while the other subjects complete; values
     checked against references outside the batch code."""
-    manifest, result = cohort
+    _manifest, result = cohort
     out = result.output_dir
     assert result.n_subjects == 6 and result.n_failed == 2 and result.n_computed == 6
     failed = dict(result.failed)
