@@ -26,9 +26,16 @@ from .curvature import gaussian_curvature, mean_curvature
 from .operators import Eigenbasis, eigenbasis
 from .surface import Surface
 
-__all__ = ["heat_kernel_signature", "scale_invariant_hks", "wave_kernel_signature",
-           "shape_dna", "shape_dna_distance", "mean_curvature", "gaussian_curvature",
-           "default_heat_times"]
+__all__ = [
+    "default_heat_times",
+    "gaussian_curvature",
+    "heat_kernel_signature",
+    "mean_curvature",
+    "scale_invariant_hks",
+    "shape_dna",
+    "shape_dna_distance",
+    "wave_kernel_signature",
+]
 
 
 def _basis(s: Surface, basis: Eigenbasis | None, k: int) -> Eigenbasis:

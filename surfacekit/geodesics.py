@@ -1,6 +1,9 @@
-"""Geodesic distances on a surface by the heat method.
+"""Geodesic distances, farthest-point sampling and geodesic polar coordinates.
 
-Distances are in the units of the vertices (mm for medical data).  The heat
+Distances (heat method) and logarithmic maps (vector heat method) come from
+potpourri3d; patch descriptors for all vertices live in :mod:`surfacekit.patches`
+and are re-exported here.  Distances are in the units of the vertices (mm for
+medical data).  The heat
 method's factorisations are kept in a :class:`GeodesicSolver` cached on the
 surface (``s.cache[("heat_solver", t_coef, robust)]``), so repeated calls on the
 same surface only pay for back-substitutions.
@@ -9,6 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .patches import patch_descriptors  # noqa: F401  (public name of this module)
 from .surface import Surface, SurfaceError
 
 
@@ -65,7 +69,7 @@ class GeodesicSolver:
         self._vector_heat = None
 
     @classmethod
-    def for_surface(cls, s: Surface, *, t_coef: float = 1.0, robust: bool = True) -> "GeodesicSolver":
+    def for_surface(cls, s: Surface, *, t_coef: float = 1.0, robust: bool = True) -> GeodesicSolver:
         """The solver cached on `s` for these settings (created on first request)."""
         key = ("heat_solver", float(t_coef), bool(robust))
         solver = s.cache.get(key)
@@ -129,8 +133,9 @@ class GeodesicSolver:
         return log * self._log_map_orientation()
 
     def _log_map_orientation(self) -> np.ndarray:
-        # geometry-central's tangent frames follow the face winding (checked by
-        # tests/test_geodesics.py on a CCW flat disk and an outward sphere).
+        # geometry-central's log map already turns counter-clockwise about the normal of
+        # the face winding (measured on a CCW flat disk and an outward sphere; guarded by
+        # tests/test_geodesics.py), so no flip is needed.
         return np.array([1.0, 1.0])
 
 
@@ -162,3 +167,88 @@ def geodesic_distance(s: Surface, sources, *, t_coef: float = 1.0, robust: bool 
     True
     """
     return GeodesicSolver.for_surface(s, t_coef=t_coef, robust=robust).distance(sources)
+
+
+def farthest_point_sampling(s: Surface, n: int, seed: int = 0, *, t_coef: float = 1.0,
+                            return_distances: bool = False):
+    """Geodesic farthest-point sampling (Eldar, Lindenbaum, Porat & Zeevi, IEEE TIP 1997;
+    on surfaces, Moenning & Dodgson 2003).
+
+    Starts from a vertex drawn with `seed`, then repeatedly adds the vertex
+    farthest (heat-method geodesic distance) from all samples so far.  Each step
+    is one back-substitution with the cached factorisation.
+
+    Parameters
+    ----------
+    s : Surface
+    n : number of samples, 1 <= n <= s.n_vertices
+    seed : chooses the first sample (deterministic)
+    return_distances : also return the (n_vertices,) distance to the nearest sample (mm)
+
+    Returns
+    -------
+    (n,) int64 vertex indices in selection order (and the distances if asked).
+    """
+    n = int(n)
+    if n < 1 or n > s.n_vertices:
+        raise ValueError(f"n must be between 1 and {s.n_vertices}, got {n}")
+    solver = GeodesicSolver.for_surface(s, t_coef=t_coef)
+    rng = np.random.default_rng(seed)
+    samples = np.empty(n, dtype=np.int64)
+    samples[0] = rng.integers(s.n_vertices)
+    nearest = solver.distance(samples[:1])
+    for i in range(1, n):
+        nearest[samples[:i]] = 0.0
+        samples[i] = int(np.argmax(nearest))
+        nearest = np.minimum(nearest, solver.distance(samples[i:i + 1]))
+    nearest[samples] = 0.0
+    return (samples, nearest) if return_distances else samples
+
+
+def geodesic_distance_matrix(s: Surface, samples, *, t_coef: float = 1.0) -> np.ndarray:
+    """(q, q) symmetric geodesic distances (mm) among sample vertices, heat method.
+
+    One solve per sample with the cached factorisation (Crane et al. 2013); the
+    heat method is not exactly symmetric, so the matrix is averaged with its
+    transpose and its diagonal set to 0.
+    """
+    idx = np.atleast_1d(np.asarray(samples))
+    _as_sources(s, idx)  # validates
+    idx = idx.astype(np.int64).ravel()
+    solver = GeodesicSolver.for_surface(s, t_coef=t_coef)
+    D = np.stack([solver.distance(i)[idx] for i in idx])
+    D = 0.5 * (D + D.T)
+    np.fill_diagonal(D, 0.0)
+    return D
+
+
+def geodesic_polar_coordinates(s: Surface, center: int, radius: float, *, t_coef: float = 1.0):
+    """Geodesic polar coordinates about a vertex by the vector heat method's logarithmic map.
+
+    Sharp, Soliman & Crane, "The vector heat method", ACM Transactions on Graphics
+    38(3), 2019, through potpourri3d; the factorisations are cached on `s`.
+    ``theta`` runs counter-clockwise about the outward normal defined by the face
+    winding (right-hand rule), from the zero direction of the tangent frame at
+    `center` (arbitrary but deterministic for a given mesh).
+
+    Parameters
+    ----------
+    s : Surface
+    center : vertex index
+    radius : geodesic radius of the patch (mm), > 0
+
+    Returns
+    -------
+    vertex_indices : (p,) int64, ascending, the vertices with ``r <= radius`` (center included)
+    r : (p,) geodesic distance from the center (mm)
+    theta : (p,) angle in radians, in (-π, π]; 0 at the center
+    """
+    if not np.isfinite(radius) or radius <= 0:
+        raise ValueError(f"radius must be a positive number, got {radius}")
+    log = GeodesicSolver.for_surface(s, t_coef=t_coef).log_map(center)
+    r = np.hypot(log[:, 0], log[:, 1])
+    idx = np.flatnonzero(r <= radius)
+    theta = np.arctan2(log[idx, 1], log[idx, 0])
+    theta[r[idx] == 0] = 0.0
+    return idx.astype(np.int64), r[idx], theta
+
