@@ -194,12 +194,14 @@ class Eigenbasis:
     vectors : (n, k) M-orthonormal eigenfunctions (``vectors.T @ M @ vectors = I``)
     mass : (n,) the lumped mass diagonal used (mm²)
     solver : name of the solver that produced them
+    notes : plain-word warnings about how they were obtained (solver fallback...)
     """
 
     values: np.ndarray
     vectors: np.ndarray
     mass: np.ndarray
     solver: str
+    notes: tuple[str, ...] = ()
 
     @property
     def k(self) -> int:
@@ -208,7 +210,7 @@ class Eigenbasis:
     def truncate(self, k: int) -> "Eigenbasis":
         if k > self.k:
             raise ValueError(f"basis has {self.k} eigenpairs, {k} requested")
-        return Eigenbasis(self.values[:k], self.vectors[:, :k], self.mass, self.solver)
+        return Eigenbasis(self.values[:k], self.vectors[:, :k], self.mass, self.solver, self.notes)
 
     def project(self, f: np.ndarray) -> np.ndarray:
         """Spectral coefficients ``Φᵀ M f`` of per-vertex values, (k,) or (k, c)."""
@@ -265,8 +267,10 @@ def _factor_solve(A: sp.spmatrix):
 def _solve_eigenbasis(L, M, k: int, solver: str) -> tuple[np.ndarray, np.ndarray, str]:
     n = L.shape[0]
     if solver == "dense" or (solver == "auto" and n <= 1200):
-        w, V = scipy.linalg.eigh(L.toarray(), M.toarray(), subset_by_index=[0, k - 1])
-        return w, V, "dense"
+        # M is diagonal: the symmetric standard form M^-1/2 L M^-1/2 is cheaper than eigh(L, M)
+        d = 1.0 / np.sqrt(M.diagonal())
+        w, Y = scipy.linalg.eigh((L.multiply(np.outer(d, d))).toarray(), subset_by_index=[0, k - 1])
+        return w, Y * d[:, None], "dense"
     if solver in ("auto", "cholmod", "arpack-lu"):
         sigma = _shift(L, M)
         A = (L - sigma * M).tocsc()
@@ -285,9 +289,9 @@ def _solve_eigenbasis(L, M, k: int, solver: str) -> tuple[np.ndarray, np.ndarray
         except spla.ArpackNoConvergence:
             warnings.warn("eigenbasis: ARPACK did not converge; falling back to LOBPCG",
                           EigenSolverWarning, stacklevel=3)
-            solver = "lobpcg"
-    if solver == "lobpcg":
-        return _lobpcg(L, M, k) + ("lobpcg",)
+            solver = "lobpcg-fallback"
+    if solver in ("lobpcg", "lobpcg-fallback"):
+        return _lobpcg(L, M, k) + (solver,)
     raise ValueError(f"unknown eigen-solver {solver!r}")
 
 
@@ -310,6 +314,13 @@ def _lobpcg(L, M, k: int):
         w, V = spla.lobpcg(A, X, B=M, M=precond, tol=1e-9, maxiter=500, largest=False)
     order = np.argsort(w)[:k]
     return w[order] + sigma, V[:, order]
+
+
+def _relative_residual(L, mdiag: np.ndarray, w: np.ndarray, V: np.ndarray) -> float:
+    """max_i ||L φ_i - λ_i M φ_i|| / ||L|| (Frobenius-free estimate with the diagonal scale)."""
+    R = L @ V - (mdiag[:, None] * V) * w[None, :]
+    scale = np.abs(L.diagonal()).max() * np.sqrt(np.einsum("ij,ij->j", V, V)).max()
+    return float(np.linalg.norm(R, axis=0).max() / max(scale, 1e-300))
 
 
 def eigenbasis(s: Surface, k: int = 100, *, method: str = "auto", solver: str = "auto",
@@ -355,7 +366,15 @@ def eigenbasis(s: Surface, k: int = 100, *, method: str = "auto", solver: str = 
     V = V / np.sqrt(np.einsum("ij,i,ij->j", V, mdiag, V))[None, :]
     V = _apply_sign_rule(V)
     w = np.maximum(w, 0.0)
-    basis = Eigenbasis(values=w, vectors=V, mass=mdiag, solver=used)
+    notes = []
+    if used == "lobpcg-fallback":
+        notes.append("ARPACK did not converge; eigenpairs come from the LOBPCG fallback")
+    residual = _relative_residual(L, mdiag, w, V)
+    if residual > 1e-6:
+        msg = f"eigenpairs inaccurate: largest relative residual {residual:.1e}"
+        warnings.warn(f"eigenbasis: {msg}", EigenSolverWarning, stacklevel=2)
+        notes.append(msg)
+    basis = Eigenbasis(values=w, vectors=V, mass=mdiag, solver=used, notes=tuple(notes))
     for arr in (basis.values, basis.vectors, basis.mass):
         arr.setflags(write=False)
     s.cache[("eigenbasis", k, method, mass)] = basis

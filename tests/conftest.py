@@ -1,3 +1,10 @@
+import os
+
+# One BLAS thread per test process: on a 2-core machine, multithreaded OpenBLAS
+# under load from other processes spins and slows small dense solves by 10-50x.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
 import numpy as np
 import pytest
 
