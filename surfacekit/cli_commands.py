@@ -194,6 +194,27 @@ def _match_options(pose: str):
     return sk.MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose])
 
 
+def without_timings(result):
+    """Drop wall-clock timings from a result's ``info`` before it is saved.
+
+    Saved files must be byte-identical for the same inputs and seed; timings
+    belong in the printed summary and the report only.
+    """
+    def strip(value):
+        if isinstance(value, dict):
+            return {k: strip(v) for k, v in value.items() if "timing" not in str(k).lower()}
+        if isinstance(value, list):
+            return [strip(v) for v in value]
+        return value
+
+    info = getattr(result, "info", None)
+    if isinstance(info, dict):
+        timings = {k: v for k, v in info.items() if "timing" in str(k).lower()}
+        result.info = strip(info)
+        return timings
+    return {}
+
+
 def _map_summary(corr) -> dict:
     out = {}
     if getattr(corr, "confidence", None) is not None:
@@ -213,6 +234,7 @@ def _match(ctx: Context) -> dict:
     t0 = time.perf_counter()
     corr = sk.match(src, tgt, _match_options(a.pose), seed=a.seed)
     seconds = time.perf_counter() - t0
+    without_timings(corr)
     corr.save(target_path)
     summary = {"source": Path(a.source).name, "target": Path(a.target).name,
                "output": str(a.output), **_map_summary(corr), "seconds": round(seconds, 2)}
@@ -288,6 +310,8 @@ def _change(ctx: Context) -> dict:
         rep = sk.measure_change(base, follow, corr, labels=labels, seed=a.seed)
         timings["change"] = time.perf_counter() - t0 - timings["match"]
         bar.update()
+        without_timings(rep)
+        without_timings(corr)
         rep.to_csv(out / "change.csv")
         rep.save(out / "change.npz")
         corr.save(out / "map.npz")

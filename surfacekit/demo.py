@@ -95,7 +95,7 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
 
     from . import report_figures as rfig
     from .prepare import prepare as prepare_surface  # module name shadows sk.prepare
-    from .cli_commands import surface_facts, write_rows_csv
+    from .cli_commands import surface_facts, without_timings, write_rows_csv
     from .report_views import change_figures, change_panel, correspondence_panel
 
     out = Path(out)
@@ -135,6 +135,7 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
     mq = sk.map_quality(base, follow_mesh, corr_mesh, ground_truth=gt, seed=seed)
     _json(res / "map_quality.json", mq)
     corr = _timed(timings, "match (segmentation follow-up)", sk.match, base, follow, seed=seed)
+    without_timings(corr)
     corr.save(res / "map.npz")
 
     say("regions from the template, change maps and regional table")
@@ -144,6 +145,7 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
                            seed=seed)
     change = _timed(timings, "change", sk.measure_change, base, follow, corr, labels=labels,
                     names=demo_data.REGION_NAMES, seed=seed)
+    without_timings(change)
     change.to_csv(res / "change.csv")
     change.save(res / "change.npz")
     regional = change.regional_table(labels, demo_data.REGION_NAMES)

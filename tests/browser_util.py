@@ -39,11 +39,13 @@ def render(html_path: Path, screenshot: Path | None = None, *, width: int = 1280
 
     Returns ``{"console": [(type, text)], "page_errors": [...], "requests": [...],
     "rendered": int, "canvas_png": bytes, "page_png": bytes}``; ``requests`` lists
-    every URL the page asked for other than the file itself (should be none).
+    every URL the page asked for other than the file itself (should be none);
+    ``dialogs`` any alert/confirm the page raised; with ``select=(panel id, option)``
+    also ``canvas_png_after_select``.
     """
     from playwright.sync_api import sync_playwright
 
-    out: dict = {"console": [], "page_errors": [], "requests": []}
+    out: dict = {"console": [], "page_errors": [], "requests": [], "dialogs": []}
     url = Path(html_path).resolve().as_uri()
     with sync_playwright() as pw:
         browser = pw.chromium.launch(executable_path=chromium_path(), args=FLAGS)
@@ -51,6 +53,7 @@ def render(html_path: Path, screenshot: Path | None = None, *, width: int = 1280
             page = browser.new_page(viewport={"width": width, "height": height})
             page.on("console", lambda m: out["console"].append((m.type, m.text)))
             page.on("pageerror", lambda e: out["page_errors"].append(str(e)))
+            page.on("dialog", lambda d: (out["dialogs"].append(d.message), d.dismiss()))
 
             def _route(route):
                 if route.request.url != url:
@@ -62,13 +65,15 @@ def render(html_path: Path, screenshot: Path | None = None, *, width: int = 1280
             page.goto(url, wait_until="load", timeout=120_000)
             page.wait_for_function("document.body.getAttribute('data-sk-rendered') !== null",
                                    timeout=120_000)
-            if select is not None:
-                page.select_option(f"#{select[0]}-select", str(select[1]))
             page.wait_for_timeout(1500)
             out["rendered"] = int(page.get_attribute("body", "data-sk-rendered") or 0)
             plot = page.locator(".plot3d").first
             plot.scroll_into_view_if_needed()
             out["canvas_png"] = plot.screenshot()
+            if select is not None:  # switch the field shown and look again
+                page.select_option(f"#{select[0]}-select", str(select[1]))
+                page.wait_for_timeout(1500)
+                out["canvas_png_after_select"] = plot.screenshot()
             out["page_png"] = page.screenshot(full_page=False)
             if screenshot is not None:
                 Path(screenshot).write_bytes(out["page_png"])
@@ -77,13 +82,20 @@ def render(html_path: Path, screenshot: Path | None = None, *, width: int = 1280
     return out
 
 
-def pixel_spread(png: bytes) -> tuple[float, int]:
-    """(standard deviation of the pixel values, number of distinct colours) of a PNG."""
+def painted(png: bytes, width_fraction: float = 0.75) -> tuple[float, int]:
+    """How much of a 3D view's picture is painted by the mesh.
+
+    Looks only at the left `width_fraction` of the picture (the colour bar, drawn
+    as SVG on the right, must not count) and returns (fraction of pixels that
+    are not the white background, number of distinct colours there).
+    """
     import io
 
     import numpy as np
     from matplotlib import image
 
     img = image.imread(io.BytesIO(png), format="png")[..., :3]
-    flat = (img.reshape(-1, 3) * 255).astype(int)
-    return float(img.std()), len(np.unique(flat[:, 0] * 65536 + flat[:, 1] * 256 + flat[:, 2]))
+    img = img[:, : int(img.shape[1] * width_fraction)]
+    flat = np.round(img.reshape(-1, 3) * 255).astype(int)
+    not_white = (255 - flat).max(axis=1) > 30
+    return float(not_white.mean()), len(np.unique(flat @ np.array([65536, 256, 1])))

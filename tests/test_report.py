@@ -1,0 +1,121 @@
+"""The HTML report: self-contained, escaped, colour scales, figures, map distortion.
+
+The in-browser rendering is checked in tests/test_browser.py.
+"""
+from __future__ import annotations
+
+import json
+import re
+
+import numpy as np
+import pytest
+
+import surfacekit as sk
+from surfacekit import report, report_figures
+from surfacekit.report import ReportLayer, ReportPanel, write_report
+from surfacekit.report_views import colour_fields, map_distortion
+
+EVIL = "<script>alert(1)</script>.ply"
+
+
+@pytest.fixture(scope="module")
+def kidney():
+    return sk.synthetic.organ_surface("kidney", 500, seed=2)[0]
+
+
+def _panel_json(html: str) -> list:
+    m = re.search(r"<script type='application/json' id='sk-panels'>(.*?)</script>", html, re.S)
+    return json.loads(m.group(1))
+
+
+def test_report_is_self_contained_and_escaped(tmp_path, kidney):
+    """A user name like <script>alert(1)</script>.ply is shown as text and never runs."""
+    x = kidney.vertices[:, 0]
+    panel = ReportPanel(EVIL, [(EVIL, kidney)],
+                        [ReportLayer(EVIL, [x], kind="diverging", unit="mm", description=EVIL)],
+                        note=EVIL)
+    path = write_report(tmp_path / "r.html", title=EVIL, subtitle=EVIL, panels=[panel],
+                        summary={EVIL: EVIL}, tables={EVIL: [{EVIL: EVIL, "n": 3}]},
+                        provenance={"inputs": [{"file": EVIL}], "options": {"label": EVIL}})
+    html = path.read_text()
+    assert "alert(1)" in html
+    assert "<script>alert(1)" not in html  # only ever escaped
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;.ply" in html
+    # the only <script> elements are the JSON blob, plotly.js and our own loader
+    assert html.count("<script") == 3
+    specs = _panel_json(html)  # parses: the JSON blob survived the escaping
+    assert specs[0]["figure"]["data"][0]["name"].startswith("&lt;script&gt;")
+    # no external resources: nothing is loaded from a network
+    assert not re.search(r"""<(script|link|img)[^>]+(src|href)=['"]?(https?:)?//""", html)
+    assert "Research use only" in html
+
+
+def test_diverging_scale_is_centred_on_zero_and_layers_switch(tmp_path, kidney):
+    """Change maps: symmetric limits put zero in the middle of the diverging scale."""
+    nd = kidney.vertices[:, 0] * 0.1 + 2.0  # mostly positive values
+    conf = np.linspace(0, 1, kidney.n_vertices)
+    labels = (kidney.vertices[:, 0] > 0).astype(int) + 1
+    panel = ReportPanel("p", [("a", kidney), ("b", kidney)], [
+        ReportLayer("change", [nd, None], kind="diverging", unit="mm"),
+        ReportLayer("confidence", [conf, conf], kind="sequential", limits=(0, 1)),
+        ReportLayer("regions", [labels, labels], kind="labels", label_names={1: "left", 2: "right"}),
+    ])
+    html = write_report(tmp_path / "r.html", title="t", panels=[panel]).read_text()
+    spec = _panel_json(html)[0]
+    change = spec["layers"][0]["update"]
+    assert change["cmin"][0] == -change["cmax"][0] > -1e9
+    assert change["cmax"][0] >= np.percentile(np.abs(nd), 99) - 1e-9
+    assert change["showscale"] == [True, False]  # one colour bar
+    assert change["colorscale"][1] == report.NEUTRAL  # field not defined on the second surface
+    assert spec["layers"][1]["update"]["cmin"] == [0.0, 0.0]
+    regions = spec["layers"][2]["update"]
+    assert regions["colorbar.ticktext"][0] == ["0", "left", "right"]
+    assert len(spec["figure"]["data"][0]["intensity"]) == kidney.n_vertices
+    assert "sk-panel-0-select" in html and html.count("<option") == 3
+
+
+def test_bad_layers_are_refused(tmp_path, kidney):
+    with pytest.raises(ValueError, match="values for surface"):
+        write_report(tmp_path / "r.html", title="t", panels=[
+            ReportPanel("p", [("a", kidney)], [ReportLayer("x", [np.zeros(3)])])])
+    with pytest.raises(ValueError, match="kind"):
+        write_report(tmp_path / "r.html", title="t", panels=[
+            ReportPanel("p", [("a", kidney)], [ReportLayer("x", [np.zeros(500)], kind="rainbow")])])
+    assert not (tmp_path / "r.html").exists()
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_png_figures_written_and_embedded(tmp_path, kidney):
+    nd = kidney.vertices[:, 2] / 10
+    figs = {"Surface map": report_figures.surface_figure(kidney, nd, title="nd", kind="diverging",
+                                                         unit="mm"),
+            "Histogram": report_figures.histogram_figure(nd, title="nd", unit="mm",
+                                                         weights=kidney.vertex_areas,
+                                                         centre_zero=True),
+            "Bars": report_figures.bar_figure(["a", "b"], [1.0, -2.0], title="x")}
+    html = write_report(tmp_path / "r.html", title="t", figures=figs,
+                        figure_dir=tmp_path / "figures").read_text()
+    pngs = sorted(p.name for p in (tmp_path / "figures").glob("*.png"))
+    assert pngs == ["bars.png", "histogram.png", "surface_map.png"]
+    for p in (tmp_path / "figures").glob("*.png"):
+        assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec, ISO 15948)
+    assert html.count("data:image/png;base64,") == 3
+    assert "<script" not in html  # no 3D panel, no plotly.js needed
+
+
+def test_map_distortion_definition(kidney):
+    """Identity map: 0 everywhere; map onto a copy scaled by 2: log2(2) = 1 everywhere (definition)."""
+    ident = np.arange(kidney.n_vertices)
+    np.testing.assert_allclose(map_distortion(kidney, kidney, ident), 0.0, atol=1e-12)
+    big = kidney.copy_with(vertices=kidney.vertices * 2.0)
+    np.testing.assert_allclose(map_distortion(kidney, big, ident), 1.0, atol=1e-12)
+
+
+def test_colour_fields_do_not_depend_on_pose(kidney):
+    """Rigid motions change nothing intrinsic (definition); the principal-axis fields follow the shape."""
+    moved = kidney.copy_with(vertices=kidney.vertices @ sk.synthetic.random_rotation(4).T + 50.0)
+    a0, b0 = colour_fields(kidney)
+    a1, b1 = colour_fields(moved)
+    np.testing.assert_allclose(a0, a1, atol=1e-9)
+    np.testing.assert_allclose(np.cos(np.radians(b0 - b1)), 1.0, atol=1e-9)
+    assert a0.min() == 0.0 and a0.max() == 1.0
