@@ -21,19 +21,34 @@ from .surface import SurfaceError
 
 
 def _text_lines(data: bytes) -> list[bytes]:
-    """Non-empty lines with ``#`` comments removed."""
-    out = []
-    for line in data.splitlines():
-        line = line.split(b"#", 1)[0].strip()
-        if line:
-            out.append(line)
-    return out
+    """Non-blank lines with ``#`` comments removed."""
+    if b"#" in data:
+        data = re.sub(rb"#[^\r\n]*", b"", data)
+    return [ln for ln in data.splitlines() if ln and not ln.isspace()]
 
 
-def _rows(lines: list[bytes], what: str) -> tuple[np.ndarray, np.ndarray]:
-    """Tokens of `lines` as float rows; returns (first 3 columns or full rows, tokens per line)."""
-    widths = np.fromiter((len(ln.split()) for ln in lines), dtype=np.int64, count=len(lines))
-    return to_numbers(b" ".join(lines).split(), np.float64, what), widths
+def _rows(lines: list[bytes], what: str, drop_slash: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """All numbers of `lines` (flat) and the number of tokens on each line.
+
+    `drop_slash` removes OBJ texture/normal references (``a/b/c`` -> ``a``).
+    """
+    joined = b"\n".join(lines)
+    if drop_slash and b"/" in joined:
+        joined = re.sub(rb"/\S*", b"", joined)
+    # normalise to single spaces inside lines (re.sub is slow with many matches: skip if clean)
+    if any(c in joined for c in (b"\t", b"\r", b"\f", b"\v", b"  ")):
+        joined = re.sub(rb"[ \t\r\f\v]+", b" ", joined)
+    if b" \n" in joined or b"\n " in joined:
+        joined = re.sub(rb" ?\n ?", b"\n", joined)
+    joined = joined.strip(b" ")
+    buf = np.frombuffer(joined, np.uint8)
+    # tokens per line = spaces on that line + 1, counted without a Python loop
+    line_of_space = np.searchsorted(np.flatnonzero(buf == 10), np.flatnonzero(buf == 32))
+    widths = np.bincount(line_of_space, minlength=len(lines)) + 1
+    tokens = joined.split()
+    if widths.sum() != len(tokens):
+        raise SurfaceError(f"blank record in {what}")
+    return to_numbers(tokens, np.float64, what), widths
 
 
 # ------------------------------------------------------------------------------ OFF
@@ -88,30 +103,30 @@ def write_off(fh, vertices, faces):
 # ------------------------------------------------------------------------------ OBJ
 def read_obj(data: bytes):
     """Parse Wavefront OBJ ``v`` and ``f`` records (``f a/b/c``, negative indices, polygons)."""
-    lines = _text_lines(data)
-    kinds = [ln.split(None, 1)[0] for ln in lines]
-    is_v = np.array([k == b"v" for k in kinds], dtype=bool)
-    is_f = np.array([k == b"f" for k in kinds], dtype=bool)
+    lines = [ln.lstrip() for ln in _text_lines(data)]
+    keys = np.array([ln[:2] for ln in lines], dtype="S2")
+    is_v = (keys == b"v ") | (keys == b"v\t")
+    is_f = (keys == b"f ") | (keys == b"f\t")
     if not is_v.any():
         raise SurfaceError("OBJ file has no vertex ('v') records")
     if not is_f.any():
         raise SurfaceError("OBJ file has no face ('f') records (point cloud, not a surface)")
-    v_lines = [lines[i][1:] for i in np.flatnonzero(is_v)]
-    vals, widths = _rows(v_lines, "OBJ vertices")
+    vals, widths = _rows([lines[i][2:] for i in np.flatnonzero(is_v)], "OBJ vertices")
     if widths.min() < 3:
         raise SurfaceError("OBJ 'v' record with fewer than 3 coordinates")
     starts = np.cumsum(widths) - widths
     vertices = vals[starts[:, None] + np.arange(3)]
     f_idx = np.flatnonzero(is_f)
-    # vertices defined before each face line, for relative (negative) indices
-    n_before = np.cumsum(is_v)[f_idx]
-    f_tokens = [ln.split()[1:] for ln in (lines[i] for i in f_idx)]
-    counts = np.fromiter((len(t) for t in f_tokens), dtype=np.int64, count=len(f_tokens))
-    flat = to_numbers([tok.split(b"/", 1)[0] for t in f_tokens for tok in t], np.int64, "OBJ faces")
-    base = np.repeat(n_before, counts)
+    # texture and normal references (a/b/c) are dropped; only the vertex index is kept
+    flat, counts = _rows([lines[i][2:] for i in f_idx], "OBJ faces", drop_slash=True)
+    flat = as_integers(flat, "i8", "OBJ face indices")
     if np.any(flat == 0):
         raise SurfaceError("OBJ face index 0 (indices start at 1)")
-    flat = np.where(flat < 0, base + flat, flat - 1)
+    if np.any(flat < 0):  # relative to the vertices defined before the face line
+        base = np.repeat(np.cumsum(is_v)[f_idx], counts)
+        flat = np.where(flat < 0, base + flat, flat - 1)
+    else:
+        flat = flat - 1
     return vertices, fan_triangulate(counts, flat), {}, "obj"
 
 
@@ -132,11 +147,18 @@ def _weld(corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     if not np.all(np.isfinite(corners)):
         kind = "NaN" if np.isnan(corners).any() else "infinite"
         raise SurfaceError(f"{kind} vertex coordinates in STL triangles")
-    uniq, first, inverse = np.unique(corners, axis=0, return_index=True, return_inverse=True)
-    order = np.argsort(first, kind="stable")
-    rank = np.empty_like(order)
-    rank[order] = np.arange(order.size)
-    return uniq[order], rank[inverse.ravel()].reshape(-1, 3)
+    c = corners + 0.0  # -0.0 becomes 0.0
+    order = np.lexsort((c[:, 2], c[:, 1], c[:, 0]))
+    sc = c[order]
+    new = np.ones(len(c), dtype=bool)
+    new[1:] = np.any(sc[1:] != sc[:-1], axis=1)
+    group = np.cumsum(new) - 1
+    first = np.minimum.reduceat(order, np.flatnonzero(new))  # first corner of each position
+    rank = np.empty(first.size, dtype=np.int64)
+    rank[np.argsort(first, kind="stable")] = np.arange(first.size)
+    vertex_of_corner = np.empty(len(c), dtype=np.int64)
+    vertex_of_corner[order] = rank[group]
+    return c[np.sort(first)], vertex_of_corner.reshape(-1, 3)
 
 
 def read_stl(data: bytes):
@@ -163,7 +185,7 @@ def read_stl(data: bytes):
 
 
 def _read_stl_ascii(data: bytes):
-    found = re.findall(rb"vertex\s+(\S+)\s+(\S+)\s+(\S+)", data, flags=re.IGNORECASE)
+    found = re.findall(rb"vertex\s+(\S+\s+\S+\s+\S+)", data, flags=re.IGNORECASE)
     if not found:
         raise SurfaceError("ASCII STL holds no triangles ('vertex' records)")
     if len(found) % 3:
@@ -171,7 +193,7 @@ def _read_stl_ascii(data: bytes):
     n_facets = len(re.findall(rb"endfacet", data, flags=re.IGNORECASE))
     if n_facets * 3 != len(found):
         raise SurfaceError(f"ASCII STL has {n_facets} complete facets for {len(found)} vertices")
-    corners = to_numbers([t for row in found for t in row], np.float64, "ASCII STL vertices")
+    corners = to_numbers(b" ".join(found).split(), np.float64, "ASCII STL vertices")
     vertices, faces = _weld(corners.reshape(-1, 3))
     return vertices, faces, {}, "stl-ascii"
 
