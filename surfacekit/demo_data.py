@@ -31,7 +31,7 @@ from .surface import Surface
 
 REGION_NAMES = {1: "upper pole", 2: "lower pole", 3: "medial side", 4: "lateral side"}
 # Centre (on the parameter sphere) of the growing region: lateral side of the upper pole.
-GROWTH_CENTRE = np.array([0.55, -0.75, 0.35]) / np.linalg.norm([0.55, -0.75, 0.35])
+GROWTH_CENTRE = np.array([0.7, -0.65, 0.3]) / np.linalg.norm([0.7, -0.65, 0.3])
 SCENARIO_TEXT = """Synthetic kidney follow-up study (invented for the surfacekit demo; no person's data).
 
 A kidney is imaged twice on two different (imaginary) scanners. Scanner A gave a clean
