@@ -111,7 +111,13 @@ def _digest_or_marker(path: Path) -> str:
         return "unreadable"
 
 
-def _prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Path, str, int]:
+def pipeline_options(target_vertices: int | None, n_eigenvalues: int, seed: int) -> dict:
+    """The options that enter the per-subject computation (and so the cache keys)."""
+    return {"target_vertices": None if target_vertices is None else int(target_vertices),
+            "n_eigenvalues": int(n_eigenvalues), "seed": int(seed)}
+
+
+def prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Path, str, int]:
     """Prepare the template once (in this process) and store it exactly (NPZ, float64).
 
     Bad template input raises (SurfaceError / ValueError): without a template no
@@ -185,9 +191,8 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     man: Manifest = read_manifest(manifest, template=template)
     out = Path(output_dir)
     (out / "subjects").mkdir(parents=True, exist_ok=True)
-    options = {"target_vertices": None if target_vertices is None else int(target_vertices),
-               "n_eigenvalues": int(n_eigenvalues), "seed": int(seed)}
-    tfile, tkey, n_template = _prepare_template(man.template, out, options)
+    options = pipeline_options(target_vertices, n_eigenvalues, seed)
+    tfile, tkey, n_template = prepare_template(man.template, out, options)
 
     rows: list[dict | None] = [None] * len(man.subjects)
     subject_dirs = [out / "subjects" / e.subject for e in man.subjects]

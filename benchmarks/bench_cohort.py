@@ -1,0 +1,116 @@
+"""Cohort throughput: 1 vs 2 local workers, peak memory per worker, cluster size for 10,000 subjects.
+
+Run:  python benchmarks/bench_cohort.py [--subjects 6] [--vertices 20000] [--workers 1 2]
+
+A synthetic cohort (kidney-like surfaces of ``--vertices`` vertices, different
+triangulations, sizes and local bulges; labelled synthetic) is written to a
+temporary folder.  The template is prepared once and copied into each run's
+output folder, as in a real cohort where it is prepared once, so the timed runs
+measure the per-subject work: prepare -> Shape-DNA -> match -> change -> write.
+Printed per engine: wall time, subjects per minute, mean time per stage and the
+peak resident memory of each worker process (``getrusage`` in the worker); then
+the speed-up of N workers over 1 in this same run (target: >= 1.4x for 2 workers
+on a 2-core machine), whether the CSV tables are byte-identical, and the number of
+single-threaded workers (and memory) a 10,000-subject cohort needs to finish in 12 hours.
+Timings on a shared machine are inflated by other load; rerun on an idle one.
+"""
+from __future__ import annotations
+
+import argparse
+import filecmp
+import math
+import os
+import shutil
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+import surfacekit as sk
+from surfacekit.batch import pipeline_options, prepare_template, read_manifest
+
+
+def write_cohort(folder: Path, n_subjects: int, n_vertices: int) -> Path:
+    """Template + `n_subjects` synthetic kidneys (two groups) and the manifest; returns its path."""
+    template, _ = sk.synthetic.organ_surface("kidney", n_vertices, seed=1000)
+    sk.save(template, folder / "template.ply")
+    rows = ["subject,path,label,group,role,age,sex", "atlas,template.ply,,,template,,"]
+    for i in range(n_subjects):
+        group = "case" if i % 2 else "control"
+        amp = 4.0 if group == "case" else 0.0
+
+        def deform(q, p, i=i, amp=amp):
+            bump = amp * np.exp(-((p[:, 0] - 1) ** 2 + p[:, 1] ** 2 + p[:, 2] ** 2) / 0.3)
+            return q * (1.0 + 0.015 * (i % 5)) + bump[:, None] * p
+
+        s, _ = sk.synthetic.organ_surface("kidney", n_vertices, seed=i, deform=deform)
+        rot = sk.synthetic.random_rotation(i)
+        sk.save(sk.Surface(s.vertices @ rot.T + 3.0 * i, s.faces), folder / f"s{i:03d}.ply")
+        rows.append(f"s{i:03d},s{i:03d}.ply,,{group},subject,{45 + 3 * i},{'FM'[i % 2]}")
+    manifest = folder / "bench_cohort.csv"
+    manifest.write_text("\n".join(rows) + "\n")
+    return manifest
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--subjects", type=int, default=6)
+    ap.add_argument("--vertices", type=int, default=20000)
+    ap.add_argument("--workers", type=int, nargs="+", default=[1, 2])
+    ap.add_argument("--cohort-size", type=int, default=10000)
+    ap.add_argument("--hours", type=float, default=12.0)
+    args = ap.parse_args()
+
+    options = {"target_vertices": args.vertices, "n_permutations": 1000, "progress": False}
+    root = Path(tempfile.mkdtemp(prefix="sk-bench-cohort-"))
+    try:
+        data = root / "data"
+        data.mkdir()
+        manifest = write_cohort(data, args.subjects, args.vertices)
+        # prepare the template once, as a cohort does, outside the timed runs
+        warm = root / "warm"
+        t0 = time.perf_counter()
+        prepare_template(read_manifest(manifest).template, warm,
+                         pipeline_options(args.vertices, 50, 0))
+        print(f"cohort: {args.subjects} subjects x {args.vertices} vertices, "
+              f"{os.cpu_count()} CPUs; template prepared in {time.perf_counter() - t0:.1f} s")
+        results = {}
+        for w in args.workers:
+            out = root / f"w{w}"
+            shutil.copytree(warm / "template", out / "template")
+            t0 = time.perf_counter()
+            res = sk.run_cohort(manifest, out, workers=w, **options)
+            wall = time.perf_counter() - t0
+            assert res.n_failed == 0, res.failed
+            results[w] = (res, wall, out)
+            per = {s: v / res.n_computed for s, v in res.stage_seconds.items()}
+            rss = sorted(res.peak_rss_mb.values())
+            print(f"workers={w}: {wall:.1f} s, {60 * args.subjects / wall:.2f} subjects/min; "
+                  f"mean s/subject: " + ", ".join(f"{k} {v:.2f}" for k, v in per.items()))
+            print(f"  peak RSS per worker process (MiB): {', '.join(f'{r:.0f}' for r in rss)}")
+        base_res, base_wall, base_out = results[min(results)]
+        for w, (res, wall, out) in results.items():
+            if w == min(results):
+                continue
+            same = all(filecmp.cmp(base_out / f, out / f, shallow=False)
+                       for f in ("cohort_summary.csv", "group_test.csv"))
+            print(f"speed-up {w} workers vs {min(results)}: {base_wall / wall:.2f}x "
+                  f"(target >= 1.4x for 2 workers); CSV tables byte-identical: {same}")
+        # cluster size: one single-threaded worker per core does one subject at a time
+        per_subject = base_wall / args.subjects * min(results)       # worker-seconds per subject
+        peak = max(max(r.peak_rss_mb.values()) for r, _, _ in results.values())
+        budget = args.hours * 3600.0
+        n_workers = math.ceil(args.cohort_size * per_subject / budget)
+        print(f"per subject: {per_subject:.1f} worker-seconds, peak {peak:.0f} MiB per worker")
+        print(f"README: at {per_subject:.0f} s and {peak:.0f} MiB per {args.vertices}-vertex subject "
+              f"(one core per worker, measured here), {args.cohort_size:,} subjects finish in "
+              f"{args.hours:.0f} hours on {n_workers} single-threaded workers "
+              f"(e.g. {math.ceil(n_workers / 16)} machines of 16 cores with "
+              f"{math.ceil(16 * peak / 1024 * 1.25)} GB each, incl. 25% headroom).")
+    finally:
+        shutil.rmtree(root, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
