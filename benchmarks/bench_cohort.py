@@ -89,7 +89,7 @@ def main() -> None:
             print(f"workers={w}: {wall:.1f} s, {60 * args.subjects / wall:.2f} subjects/min; "
                   f"mean s/subject: " + ", ".join(f"{k} {v:.2f}" for k, v in per.items()))
             print(f"  peak RSS per worker process (MiB): {', '.join(f'{r:.0f}' for r in rss)}")
-        base_res, base_wall, base_out = results[min(results)]
+        _base, base_wall, base_out = results[min(results)]
         for w, (res, wall, out) in results.items():
             if w == min(results):
                 continue
