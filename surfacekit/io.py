@@ -61,13 +61,25 @@ def atomic_path(path, suffix: str | None = None):
     os.close(fd)
     try:
         yield Path(tmp)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
+
+
+def _umask() -> int:
+    """The process umask, read without changing it (os.umask would race with other threads)."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except OSError:
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def sidecar_path(path) -> Path:
@@ -82,6 +94,8 @@ def _read_bytes(path: Path) -> bytes:
         raise SurfaceError(f"no such file: {path}")
     if path.is_dir():
         raise SurfaceError(f"{path} is a directory, not a mesh file")
+    if not path.is_file():  # a FIFO or device would block or never end
+        raise SurfaceError(f"{path} is not a regular file")
     try:
         data = path.read_bytes()
     except OSError as exc:

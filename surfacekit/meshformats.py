@@ -132,8 +132,8 @@ def field_columns(fields: dict, n: int) -> list[tuple[str, np.ndarray]]:
     cols = []
     for name, arr in fields.items():
         a = np.asarray(arr)
-        if a.ndim == 1:
-            cols.append((name, a))
+        if a.ndim == 1 or a.shape[1] == 1:  # (n, 1) is stored, and read back, as (n,)
+            cols.append((name, a.reshape(-1)))
         elif a.shape[1] == 3:
             cols.extend((f"{name}_{ax}", a[:, i]) for i, ax in enumerate("xyz"))
         else:

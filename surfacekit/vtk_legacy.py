@@ -58,8 +58,10 @@ class _Cursor:
             raise SurfaceError("VTK keyword line is not ASCII text (misplaced binary data?)") from None
 
     def peek_word(self) -> bytes:
-        self._skip_space()
-        return self.data[self.pos: self.pos + 16].split(maxsplit=1)[0] if self.pos < len(self.data) else b""
+        """The next word, without moving (binary data may start with whitespace bytes)."""
+        start = _SPACE.match(self.data, self.pos).end()
+        words = self.data[start: start + 16].split(maxsplit=1)
+        return words[0] if words else b""
 
     def skip_metadata(self) -> None:
         """Skip a METADATA block: lines up to the first empty line."""

@@ -321,6 +321,24 @@ def test_vtk_51_offsets_connectivity(tmp_path):
     assert s.n_faces == 4 and np.isclose(s.volume, 1 / 6)
 
 
+def test_binary_vtk_scalars_starting_with_whitespace_bytes(tmp_path):
+    """Binary data right after a SCALARS line (no LOOKUP_TABLE) may begin with a byte that
+    looks like whitespace (0x20, 0x0a); it must not be skipped.  Big-endian per the VTK
+    File Formats guide."""
+    values = np.frombuffer(b"\x20\x00\x00\x01\x0a\x00\x00\x02\x09\x00\x00\x03\x0d\x00\x00\x04",
+                           ">f4")
+    pts = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]], ">f4")
+    cells = np.array([[3, 0, 2, 1], [3, 0, 1, 3], [3, 0, 3, 2], [3, 1, 2, 3]], ">i4")
+    data = (b"# vtk DataFile Version 3.0\nbin\nBINARY\nDATASET POLYDATA\nPOINTS 4 float\n"
+            + pts.tobytes() + b"\nPOLYGONS 4 16\n" + cells.tobytes()
+            + b"\nPOINT_DATA 4\nSCALARS w float 1\n" + values.tobytes() + b"\n")
+    path = tmp_path / "ws.vtk"
+    path.write_bytes(data)
+    s, got = load_with_fields(path)
+    assert np.isclose(s.volume, 1 / 6)
+    np.testing.assert_array_equal(got["w"], values.astype(np.float32))
+
+
 def test_obj_features(tmp_path):
     """OBJ with v/vt/vn face records, negative (relative) indices, a quad, comments and a
     material library that must not be opened (Wavefront OBJ layout, common practice)."""
@@ -499,6 +517,23 @@ def test_save_refuses_bad_targets(tmp_path, sphere):
         sk.save(sphere, tmp_path / "mesh.xyz")
     with pytest.raises(sk.SurfaceError, match="folder does not exist"):
         sk.save(sphere, tmp_path / "missing" / "mesh.ply")
+
+
+@pytest.mark.timeout(20)
+def test_fifo_is_refused_without_blocking(tmp_path):
+    """Reading a named pipe would block forever; it is refused as not a regular file."""
+    fifo = tmp_path / "pipe.ply"
+    os.mkfifo(fifo)
+    with pytest.raises(sk.SurfaceError, match="not a regular file"):
+        sk.load(fifo)
+
+
+@pytest.mark.parametrize("ext", ["ply", "vtk"])
+def test_single_column_fields_come_back_flat(tmp_path, sphere, ext):
+    column = np.arange(sphere.n_vertices, dtype=np.float64)[:, None]
+    sk.save(sphere, tmp_path / f"c.{ext}", fields={"col": column})
+    got = load_with_fields(tmp_path / f"c.{ext}")[1]
+    np.testing.assert_array_equal(got["col"], column[:, 0])
 
 
 def test_save_fields_load_fields(tmp_path):
