@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
-from browser_util import render, why_no_browser  # noqa: E402
+from browser_util import render, why_no_browser
 
 
 def main(report: str, png: str) -> None:

@@ -17,8 +17,8 @@ import tempfile
 import traceback
 import warnings
 import zipfile
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Sequence
 
 from .surface import SurfaceError
 
@@ -32,7 +32,7 @@ class InputError(ValueError):
 class _Parser(argparse.ArgumentParser):
     """An argparse parser whose errors are one-line InputErrors instead of usage dumps."""
 
-    def error(self, message: str):  # noqa: D102 - argparse hook
+    def error(self, message: str):
         raise InputError(f"{self.prog}: {message} (see '{self.prog} --help')")
 
 

@@ -8,20 +8,26 @@ the files that ``surfacekit demo -o surfacekit-demo`` writes, so they run as sho
 from __future__ import annotations
 
 import argparse
-import csv
-import json
-import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
 from .cli import Context, InputError
+from .cli_batch import _cohort, _cohort_args, _demo, _demo_args
+from .cli_util import (
+    existing,
+    input_record,
+    is_volume,
+    load_surface,
+    surface_facts,
+    without_timings,
+    write_json,
+    write_rows_csv,
+)
 
-VOLUME_SUFFIXES = (".nii", ".nii.gz")
-MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk")
 D = "surfacekit-demo/data"
 
 
@@ -35,63 +41,10 @@ class Command:
     run: Callable[[Context], dict]
 
 
-def _existing(path: str, what: str = "input") -> Path:
-    p = Path(path)
-    if not p.exists():
-        raise InputError(f"{what} not found: {p}")
-    if p.is_dir():
-        raise InputError(f"{what} is a folder, expected a file: {p}")
-    return p
-
-
-def _is_volume(path: Path) -> bool:
-    return path.name.lower().endswith(VOLUME_SUFFIXES)
-
-
-def load_surface(path: str, what: str = "mesh"):
-    """Load a mesh for a command; bad files become one-line input errors."""
-    import surfacekit as sk
-
-    p = _existing(path, what)
-    if _is_volume(p):
-        raise InputError(f"{p.name} is a label volume; run 'surfacekit prepare {p} -o mesh.ply' first")
-    if not p.name.lower().endswith(MESH_SUFFIXES):
-        raise InputError(f"unsupported {what} format: {p.name} (use {', '.join(MESH_SUFFIXES)})")
-    try:
-        return sk.load(p)
-    except sk.SurfaceError as exc:
-        raise InputError(f"cannot read {p.name}: {exc}") from None
-
-
-def _write_json(path: Path, data: dict) -> None:
-    from .cli import _json_default
-
-    path.write_text(json.dumps(data, indent=2, sort_keys=True, default=_json_default) + "\n")
-
-
-def _input_record(path: Path, surface=None) -> dict:
-    import hashlib
-
-    h = hashlib.sha256(path.read_bytes()).hexdigest()[:16] if path.is_file() else ""
-    rec = {"file": path.name, "sha256 (first 16)": h}
-    if surface is not None:
-        rec.update(vertices=surface.n_vertices, faces=surface.n_faces)
-    return rec
-
-
 # ---------------------------------------------------------------- inspect
 def _inspect_args(p):
     p.add_argument("mesh", help="surface mesh (.ply .obj .stl .off .gii .vtk)")
     p.add_argument("-o", "--output", help="also write the quality summary to this .json file")
-
-
-def surface_facts(s) -> dict:
-    """Basic geometric facts of a surface (mm, mm², ml)."""
-    return {"vertices": s.n_vertices, "faces": s.n_faces, "area_mm2": float(s.area),
-            "volume_ml": float(s.volume) / 1000.0, "closed": bool(s.is_closed),
-            "edge_manifold": bool(s.is_edge_manifold), "components": int(s.n_components),
-            "genus": int(s.genus) if s.is_closed and s.is_edge_manifold else None,
-            "mean_edge_mm": float(s.mean_edge_length)}
 
 
 def _inspect(ctx: Context) -> dict:
@@ -104,7 +57,7 @@ def _inspect(ctx: Context) -> dict:
     summary["quality"] = quality.to_dict()
     summary["warnings"] = list(quality.warnings)
     if target is not None:
-        _write_json(target, summary)
+        write_json(target, summary)
     for w in summary["warnings"]:
         ctx.say(f"surfacekit: quality warning: {w}")
     return summary
@@ -128,9 +81,9 @@ def _prepare(ctx: Context) -> dict:
     if a.target_vertices is not None and a.target_vertices < 100:
         raise InputError(f"--target-vertices must be at least 100, got {a.target_vertices}")
     target = ctx.outputs.claim(a.output, suffixes=(".ply", ".obj", ".stl", ".off"))
-    src = _existing(a.input)
+    src = existing(a.input)
     with ctx.progress(2, "prepare") as bar:
-        if _is_volume(src):
+        if is_volume(src):
             surface = sk.from_segmentation(src, a.label)
         else:
             surface = load_surface(a.input)
@@ -194,27 +147,6 @@ def _match_options(pose: str):
     return sk.MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose])
 
 
-def without_timings(result):
-    """Drop wall-clock timings from a result's ``info`` before it is saved.
-
-    Saved files must be byte-identical for the same inputs and seed; timings
-    belong in the printed summary and the report only.
-    """
-    def strip(value):
-        if isinstance(value, dict):
-            return {k: strip(v) for k, v in value.items() if "timing" not in str(k).lower()}
-        if isinstance(value, list):
-            return [strip(v) for v in value]
-        return value
-
-    info = getattr(result, "info", None)
-    if isinstance(info, dict):
-        timings = {k: v for k, v in info.items() if "timing" in str(k).lower()}
-        result.info = strip(info)
-        return timings
-    return {}
-
-
 def _map_summary(corr) -> dict:
     out = {}
     if getattr(corr, "confidence", None) is not None:
@@ -247,8 +179,8 @@ def _match(ctx: Context) -> dict:
                      subtitle=f"{names[0]} → {names[1]}",
                      panels=[correspondence_panel(names[0], src, names[1], tgt, corr)],
                      summary={k: v for k, v in summary.items() if k != "seconds"},
-                     provenance={"inputs": [_input_record(Path(a.source), src),
-                                            _input_record(Path(a.target), tgt)],
+                     provenance={"inputs": [input_record(Path(a.source), src),
+                                            input_record(Path(a.target), tgt)],
                                  "options": {"pose": a.pose, "seed": a.seed},
                                  "timings (s)": {"match": round(seconds, 2)}})
     return summary
@@ -271,7 +203,7 @@ def load_regions(path: str, field: str):
     """A template surface and its integer per-vertex region labels."""
     import surfacekit as sk
 
-    p = _existing(path, "region template")
+    p = existing(path, "region template")
     template, fields = sk.io.load_with_fields(p)
     if field not in fields:
         raise InputError(f"{p.name} has no per-vertex field {field!r} (fields: "
@@ -293,7 +225,7 @@ def _change(ctx: Context) -> dict:
     base, follow = load_surface(a.baseline, "baseline"), load_surface(a.followup, "follow-up")
     corr = None
     if a.map:
-        corr = sk.Correspondence.load(_existing(a.map, "map"))
+        corr = sk.Correspondence.load(existing(a.map, "map"))
         if len(corr.source_to_target) != base.n_vertices or len(corr.target_to_source) != follow.n_vertices:
             raise InputError(f"map {Path(a.map).name} does not fit these surfaces "
                              "(vertex counts differ)")
@@ -330,90 +262,14 @@ def _change(ctx: Context) -> dict:
                          panels=[change_panel(names[0], base, names[1], follow, corr, rep, labels)],
                          summary=summary, tables={"Regions": regional} if regional else None,
                          figures=figs, figure_dir=out / "figures",
-                         provenance={"inputs": [_input_record(Path(a.baseline), base),
-                                                _input_record(Path(a.followup), follow)],
+                         provenance={"inputs": [input_record(Path(a.baseline), base),
+                                                input_record(Path(a.followup), follow)],
                                      "options": {"pose": a.pose, "seed": a.seed,
                                                  "map": a.map or "", "regions": a.regions or ""},
                                      "timings (s)": {k: round(v, 2) for k, v in timings.items()}})
         bar.update()
     return {"baseline": Path(a.baseline).name, "followup": Path(a.followup).name,
             "output": str(a.output), **rep.summary(), **_map_summary(corr)}
-
-
-def write_rows_csv(path: Path, rows: list[dict]) -> None:
-    """Rows (dicts) to CSV with a stable column order and fixed float formatting."""
-    columns: list[str] = []
-    for r in rows:
-        columns += [c for c in r if c not in columns]
-    with open(path, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=columns, lineterminator="\n")
-        w.writeheader()
-        for r in rows:
-            w.writerow({k: (f"{v:.6g}" if isinstance(v, (float, np.floating)) else v)
-                        for k, v in r.items()})
-
-
-# ---------------------------------------------------------------- cohort
-def _cohort_args(p):
-    p.add_argument("manifest", help="cohort CSV: subject,path,label,group,role,age,sex")
-    p.add_argument("-o", "--output", required=True, help="output folder")
-    p.add_argument("--template", help="template surface (overrides the manifest's template row)")
-    p.add_argument("--workers", type=int, default=1, help="local worker processes (default 1)")
-    p.add_argument("--target-vertices", type=int, default=3000,
-                   help="resample every surface to about this many vertices (default 3000)")
-    p.add_argument("--permutations", type=int, default=2000,
-                   help="permutations of the vertex-wise group test (default 2000)")
-
-
-def check_manifest(path: Path) -> None:
-    """Fail fast on a manifest that is not a cohort CSV (the engine checks the rest)."""
-    required = {"subject", "path", "group", "role"}
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            header = next(csv.reader(fh), [])
-    except UnicodeDecodeError:
-        raise InputError(f"{path.name} is not a text CSV file") from None
-    missing = required - {h.strip() for h in header}
-    if missing:
-        raise InputError(f"{path.name} is not a cohort manifest: missing column(s) "
-                         f"{', '.join(sorted(missing))}")
-
-
-def _cohort(ctx: Context) -> dict:
-    import surfacekit as sk
-
-    a = ctx.args
-    if a.workers < 1:
-        raise InputError(f"--workers must be at least 1, got {a.workers}")
-    manifest = _existing(a.manifest, "manifest")
-    check_manifest(manifest)
-    if a.template:
-        _existing(a.template, "template")
-    out = ctx.outputs.claim(a.output, directory=True)
-    result = sk.run_cohort(manifest, out, a.template, workers=a.workers,
-                           target_vertices=a.target_vertices, n_permutations=a.permutations,
-                           seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty())
-    if result.n_failed == result.n_subjects:
-        raise InputError(f"every subject failed; first: {result.failed[0][0]}: {result.failed[0][1]}")
-    ctx.say(result.summary())
-    return {"manifest": manifest.name, "output": str(a.output), "subjects": result.n_subjects,
-            "failed": result.n_failed, "tables": {k: Path(v).name for k, v in result.tables.items()}}
-
-
-# ---------------------------------------------------------------- demo
-def _demo_args(p):
-    p.add_argument("-o", "--output", default="surfacekit-demo",
-                   help="output folder (default ./surfacekit-demo)")
-    p.add_argument("--size", choices=("full", "small"), default="full",
-                   help="small: coarser meshes and 8 subjects, for quick checks")
-
-
-def _demo(ctx: Context) -> dict:
-    from .demo import run_demo
-
-    out = ctx.outputs.claim(ctx.args.output, directory=True)
-    return run_demo(out, size=ctx.args.size, seed=ctx.args.seed, quiet=ctx.quiet,
-                    display_root=Path(ctx.args.output))
 
 
 COMMANDS = [

@@ -94,8 +94,8 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
     import surfacekit as sk
 
     from . import report_figures as rfig
+    from .cli_util import surface_facts, without_timings, write_rows_csv
     from .prepare import prepare as prepare_surface  # module name shadows sk.prepare
-    from .cli_commands import surface_facts, without_timings, write_rows_csv
     from .report_views import change_figures, change_panel, correspondence_panel
 
     out = Path(out)

@@ -220,11 +220,10 @@ def write_scenario(folder, size: str = "full", seed: int = 0) -> dict:
                               "group": r["group"], "role": "subject", "age": r["age"],
                               "sex": r["sex"]})
     paths["manifest"] = folder / "demo_cohort.csv"
-    with atomic_path(paths["manifest"], suffix=".csv") as tmp:
-        with open(tmp, "w", newline="") as fh:
-            w = csv.DictWriter(fh, fieldnames=list(manifest_rows[0]), lineterminator="\n")
-            w.writeheader()
-            w.writerows(manifest_rows)
+    with atomic_path(paths["manifest"], suffix=".csv") as tmp, open(tmp, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(manifest_rows[0]), lineterminator="\n")
+        w.writeheader()
+        w.writerows(manifest_rows)
     text = SCENARIO_TEXT.format(baseline=sizes.baseline, followup=sizes.followup,
                                 voxel=" x ".join(f"{v:g}" for v in sizes.voxel),
                                 growth=sizes.growth_mm, true_dv=true_dv,

@@ -21,11 +21,12 @@ import io
 import json
 import platform
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from importlib import resources
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 

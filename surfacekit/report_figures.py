@@ -1,7 +1,7 @@
 """Static PNG figures (matplotlib, Agg backend) for printing alongside the HTML report."""
 from __future__ import annotations
 
-from typing import Sequence
+from collections.abc import Sequence
 
 import numpy as np
 

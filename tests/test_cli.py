@@ -64,7 +64,8 @@ def test_help_shows_a_runnable_example(spec, capsys):
 
 def test_unknown_option_is_one_line_exit_2(capsys):
     code, out, err = run(["match", "a.ply"], capsys)
-    assert code == 2 and out == ""
+    assert code == 2
+    assert out == ""
     assert "required" in one_error_line(err)
 
 
@@ -74,7 +75,7 @@ def test_malformed_mesh_exit_2_one_line_no_output(tmp_path, capsys, case, name, 
     """The I/O engineer's malformed corpus: every file gives exit 2, one line, nothing written."""
     bad = materialise(tmp_path, name, data)
     target = tmp_path / "out" / "quality.json"
-    code, out, err = run(["inspect", bad, "-o", target], capsys)
+    code, _, err = run(["inspect", bad, "-o", target], capsys)
     assert code == 2, err
     line = one_error_line(err)
     assert line.startswith("surfacekit: error:")
@@ -90,7 +91,7 @@ def test_malformed_mesh_through_the_installed_command(tmp_path, meshes):
     cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "surfacekit.cli"]
     proc = subprocess.run(cmd + ["match", str(meshes / "base.ply"), str(bad), "-o",
                                  str(tmp_path / "out.npz")], capture_output=True, text=True,
-                          timeout=120)
+                          timeout=120, check=False)
     assert proc.returncode == 2
     assert "broken.ply" in one_error_line(proc.stderr)
     assert not (tmp_path / "out.npz").exists()
@@ -123,7 +124,7 @@ def test_existing_output_needs_force_and_failed_run_keeps_it(tmp_path, meshes, c
     # a failing run with --force must not replace the existing output either
     code, _, err = run(["inspect", tmp_path / "absent.ply", "-o", target, "--force"], capsys)
     assert code == 2 and target.read_text() == "keep me"
-    code, out, _ = run(["inspect", meshes / "base.ply", "-o", target, "--force", "--json"], capsys)
+    code, _, _ = run(["inspect", meshes / "base.ply", "-o", target, "--force", "--json"], capsys)
     assert code == 0
     assert json.loads(target.read_text())["vertices"] == 700
     assert sorted(p.name for p in tmp_path.iterdir()) == ["quality.json"]
@@ -176,8 +177,8 @@ def test_prepare_from_label_volume_keeps_mask_volume(tmp_path, capsys):
     s, _ = sk.synthetic.organ_surface("kidney", 2000, seed=3)
     mask, affine = demo_data.voxelize(s, (1.0, 1.0, 2.0))
     demo_data.write_nifti(tmp_path / "seg.nii.gz", mask.astype(np.uint8) * 3, affine)
-    code, out, err = run(["prepare", tmp_path / "seg.nii.gz", "--label", "3", "--target-vertices",
-                          "1500", "-o", tmp_path / "k.ply", "--json"], capsys)
+    code, _, err = run(["prepare", tmp_path / "seg.nii.gz", "--label", "3", "--target-vertices",
+                          "1500", "-o", tmp_path / "k.ply", "-q"], capsys)
     assert code == 0, err
     k = sk.load(tmp_path / "k.ply")
     mask_ml = mask.sum() * 2.0 / 1000.0

@@ -24,7 +24,7 @@ def kidney():
 
 
 def _panel_json(html: str) -> list:
-    m = re.search(r"<script type='application/json' id='sk-panels'>(.*?)</script>", html, re.S)
+    m = re.search(r"<script type='application/json' id='sk-panels'>(.*?)</script>", html, re.DOTALL)
     return json.loads(m.group(1))
 
 

@@ -1,0 +1,101 @@
+"""Helpers shared by the ``surfacekit`` subcommands: input checks, small writers."""
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+
+from .cli import InputError
+
+VOLUME_SUFFIXES = (".nii", ".nii.gz")
+MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk")
+
+
+def existing(path: str, what: str = "input") -> Path:
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{what} not found: {p}")
+    if p.is_dir():
+        raise InputError(f"{what} is a folder, expected a file: {p}")
+    return p
+
+
+def is_volume(path: Path) -> bool:
+    return path.name.lower().endswith(VOLUME_SUFFIXES)
+
+
+def load_surface(path: str, what: str = "mesh"):
+    """Load a mesh for a command; bad files become one-line input errors."""
+    import surfacekit as sk
+
+    p = existing(path, what)
+    if is_volume(p):
+        raise InputError(f"{p.name} is a label volume; run 'surfacekit prepare {p} -o mesh.ply' first")
+    if not p.name.lower().endswith(MESH_SUFFIXES):
+        raise InputError(f"unsupported {what} format: {p.name} (use {', '.join(MESH_SUFFIXES)})")
+    try:
+        return sk.load(p)
+    except sk.SurfaceError as exc:
+        raise InputError(f"cannot read {p.name}: {exc}") from None
+
+
+def write_json(path: Path, data: dict) -> None:
+    from .cli import _json_default
+
+    path.write_text(json.dumps(data, indent=2, sort_keys=True, default=_json_default) + "\n")
+
+
+def input_record(path: Path, surface=None) -> dict:
+    import hashlib
+
+    h = hashlib.sha256(path.read_bytes()).hexdigest()[:16] if path.is_file() else ""
+    rec = {"file": path.name, "sha256 (first 16)": h}
+    if surface is not None:
+        rec.update(vertices=surface.n_vertices, faces=surface.n_faces)
+    return rec
+
+
+def surface_facts(s) -> dict:
+    """Basic geometric facts of a surface (mm, mm², ml)."""
+    return {"vertices": s.n_vertices, "faces": s.n_faces, "area_mm2": float(s.area),
+            "volume_ml": float(s.volume) / 1000.0, "closed": bool(s.is_closed),
+            "edge_manifold": bool(s.is_edge_manifold), "components": int(s.n_components),
+            "genus": int(s.genus) if s.is_closed and s.is_edge_manifold else None,
+            "mean_edge_mm": float(s.mean_edge_length)}
+
+
+
+def without_timings(result):
+    """Drop wall-clock timings from a result's ``info`` before it is saved.
+
+    Saved files must be byte-identical for the same inputs and seed; timings
+    belong in the printed summary and the report only.
+    """
+    def strip(value):
+        if isinstance(value, dict):
+            return {k: strip(v) for k, v in value.items() if "timing" not in str(k).lower()}
+        if isinstance(value, list):
+            return [strip(v) for v in value]
+        return value
+
+    info = getattr(result, "info", None)
+    if isinstance(info, dict):
+        timings = {k: v for k, v in info.items() if "timing" in str(k).lower()}
+        result.info = strip(info)
+        return timings
+    return {}
+
+
+def write_rows_csv(path: Path, rows: list[dict]) -> None:
+    """Rows (dicts) to CSV with a stable column order and fixed float formatting."""
+    columns: list[str] = []
+    for r in rows:
+        columns += [c for c in r if c not in columns]
+    with open(path, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=columns, lineterminator="\n")
+        w.writeheader()
+        for r in rows:
+            w.writerow({k: (f"{v:.6g}" if isinstance(v, (float, np.floating)) else v)
+                        for k, v in r.items()})
