@@ -165,7 +165,8 @@ def wave_kernel_signature(s: Surface, energies=None, basis: Eigenbasis | None = 
     sampling of the paper: with ``δ = (log λ_max - log λ_1) / n_energies`` and
     ``σ = sigma_factor · δ`` (sigma_factor 7), the log-energies run evenly from
     ``log λ_1 + 2σ`` to ``log λ_max - 2σ``.  Given `energies` (log-energies, in
-    ``log(1/mm²)``), σ is `sigma_factor` times their mean spacing.
+    ``log(1/mm²)``), σ is `sigma_factor` times their mean spacing (times δ for a
+    single energy).
 
     Parameters
     ----------
@@ -196,7 +197,9 @@ def wave_kernel_signature(s: Surface, energies=None, basis: Eigenbasis | None = 
         e = np.atleast_1d(np.asarray(energies, dtype=float)).ravel()
         if e.size == 0 or not np.all(np.isfinite(e)):
             raise ValueError("energies must be finite log-energies")
-        sigma = sigma_factor * (np.abs(np.diff(e)).mean() if e.size > 1 else 1.0)
+        spacing = (np.abs(np.diff(e)).mean() if e.size > 1
+                   else (log_lam.max() - log_lam.min()) / n_energies)  # the paper's δ
+        sigma = sigma_factor * spacing
     weights = np.exp(-((e[None, :] - log_lam[:, None]) ** 2) / (2 * sigma**2))  # (k, E)
     wks = (phi**2) @ weights / np.maximum(weights.sum(axis=0), 1e-300)
     if normalize:

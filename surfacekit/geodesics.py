@@ -111,18 +111,26 @@ class GeodesicSolver:
         return self._vector_heat
 
     def distance(self, sources) -> np.ndarray:
-        """(n,) geodesic distance (vertex units) from the nearest of `sources` (vertex indices)."""
+        """(n,) geodesic distance (vertex units) from the nearest of `sources` (vertex indices);
+        ``inf`` on connected components that hold no source."""
         idx = _as_sources(self.surface, sources)
         if idx.size == 1:
             d = self.heat.compute_distance(int(idx[0]))
         else:
             d = self.heat.compute_distance_multisource([int(i) for i in idx])
-        d = np.asarray(d, dtype=np.float64)
+        d = np.maximum(np.asarray(d, dtype=np.float64), 0.0)
         d[idx] = 0.0
-        return np.maximum(d, 0.0)
+        # the heat method leaves a meaningless constant on components without a source
+        d[~self._reachable(idx)] = np.inf
+        return d
+
+    def _reachable(self, idx: np.ndarray) -> np.ndarray:
+        comp = self.surface.vertex_components
+        return np.isin(comp, comp[idx])
 
     def log_map(self, center: int) -> np.ndarray:
-        """(n, 2) logarithmic map about vertex `center` (vertex units), CCW about the outward normal.
+        """(n, 2) logarithmic map about vertex `center` (vertex units), CCW about the outward normal;
+        NaN on other connected components.
 
         Vector heat method (Sharp, Soliman & Crane 2019).  The second coordinate is
         oriented so that the angle ``atan2(y, x)`` increases counter-clockwise seen
@@ -130,6 +138,7 @@ class GeodesicSolver:
         """
         c = int(_as_sources(self.surface, [center])[0])
         log = np.asarray(self.vector_heat.compute_log_map(c), dtype=np.float64)
+        log[~self._reachable(np.array([c]))] = np.nan
         return log * self._log_map_orientation()
 
     def _log_map_orientation(self) -> np.ndarray:
@@ -156,7 +165,8 @@ def geodesic_distance(s: Surface, sources, *, t_coef: float = 1.0, robust: bool 
 
     Returns
     -------
-    (n,) float64 distances in the units of the vertices (mm), 0 at the sources.
+    (n,) float64 distances in the units of the vertices (mm), 0 at the sources and
+    ``inf`` on connected components without a source.
 
     Examples
     --------

@@ -225,3 +225,15 @@ def test_patch_descriptor_of_linear_field_on_plane():
     assert np.all(d1[:, 1] > 0.01) and np.all(d1[:, 2] < 0.05 * d1[:, 1])
     with pytest.raises(ValueError):
         sk.patch_descriptors(s, x[:-1])
+
+
+def test_other_components_are_unreachable():
+    """Definition: no path joins two connected components, so the distance is infinite."""
+    a = sk.synthetic.icosphere(2)
+    s = sk.Surface(np.r_[a.vertices, a.vertices + 5], np.r_[a.faces, a.faces + a.n_vertices])
+    d = sk.geodesic_distance(s, 0)
+    assert np.all(np.isinf(d[a.n_vertices:])) and np.all(np.isfinite(d[: a.n_vertices]))
+    samples = sk.farthest_point_sampling(s, 2, seed=0)
+    assert len(set(s.vertex_components[samples])) == 2  # one sample per component
+    idx, r, _ = sk.geodesic_polar_coordinates(s, 0, 10.0)
+    assert idx.max() < a.n_vertices and r.max() < np.pi + 0.1
