@@ -155,3 +155,4 @@ def outward_vertex_normals(s: Surface) -> np.ndarray:
     if s.is_closed and s.signed_volume < 0:
         return -n
     return n
+
