@@ -50,6 +50,7 @@ def mean_curvature(s: Surface, *, area: str = "voronoi", method: str = "auto") -
 
     Examples
     --------
+    >>> import numpy as np
     >>> import surfacekit as sk
     >>> s = sk.synthetic.icosphere(4, radius=2.0)
     >>> bool(abs(np.median(sk.mean_curvature(s)) - 0.5) < 0.01)

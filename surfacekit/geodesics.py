@@ -170,6 +170,7 @@ def geodesic_distance(s: Surface, sources, *, t_coef: float = 1.0, robust: bool 
 
     Examples
     --------
+    >>> import numpy as np
     >>> import surfacekit as sk
     >>> s = sk.synthetic.icosphere(4)
     >>> d = sk.geodesic_distance(s, 0)

@@ -127,22 +127,34 @@ def patch_descriptors(s: Surface, signal, radius: float | None = None, *, n_ring
     n_rings, n_angles, n_frequencies : grid and output sizes
     centers : vertex indices to describe (default all)
 
+    Non-finite signal values (e.g. curvature on a boundary) are left out of the
+    pooling; a ring with no finite value gives NaN.
+
     Returns
     -------
-    (len(centers), c · n_rings · n_frequencies) float64, ordered (channel, ring, frequency).
+    (len(centers), c · n_rings · n_frequencies) float64, ordered (channel, ring, frequency);
+    units of the signal.
+
+    Examples
+    --------
+    >>> import surfacekit as sk
+    >>> s = sk.synthetic.icosphere(3)
+    >>> sk.patch_descriptors(s, s.vertices[:, 2], radius=0.5).shape
+    (642, 12)
     """
     f = np.asarray(signal, dtype=np.float64)
     f2 = f[:, None] if f.ndim == 1 else f
     if f2.ndim != 2 or f2.shape[0] != s.n_vertices:
         raise ValueError(f"signal must have shape (n_vertices={s.n_vertices},) or (n, c), got {f.shape}")
-    if not np.all(np.isfinite(f2)):
-        raise ValueError("signal has NaN or infinite values")
+    valid = np.isfinite(f2)
+    if not valid.any(axis=0).all():
+        raise ValueError("signal has a channel without any finite value")
+    f2 = np.where(valid, f2, 0.0)
     if n_rings < 1 or n_angles < 2 or not 1 <= n_frequencies <= n_angles // 2:
         raise ValueError("need n_rings >= 1, n_angles >= 2 and 1 <= n_frequencies <= n_angles // 2")
     radius = default_patch_radius(s) if radius is None else float(radius)
     indptr, nbr, r, theta = local_polar_coordinates(s, radius, centers)
     n_centers = indptr.size - 1
-    row = np.repeat(np.arange(n_centers), np.diff(indptr))
     spacing = radius / n_rings
     ring_centres = (np.arange(n_rings) + 0.5) * spacing
     ring_w = np.exp(-((r[:, None] - ring_centres[None, :]) ** 2) / (2 * (0.5 * spacing) ** 2))
@@ -153,12 +165,15 @@ def patch_descriptors(s: Surface, signal, radius: float | None = None, *, n_ring
     phase = np.exp(-1j * np.outer(theta, m)) * (r[:, None] > 0)  # centre has no direction
     phase[:, 0] = 1.0
     out = np.empty((n_centers, f2.shape[1], n_rings, n_frequencies))
+    weight_of_valid = valid.astype(np.float64)
     for a in range(n_rings):
-        total = np.bincount(row, weights=ring_w[:, a], minlength=n_centers)
-        for k in range(n_frequencies):
-            # pairs are grouped by centre, so (indptr, nbr) already is a CSR structure
-            W = sp.csr_matrix((ring_w[:, a] * phase[:, k] * damp[k], nbr, indptr),
-                              shape=(n_centers, s.n_vertices))
-            coef = (W @ f2) / np.maximum(total, 1e-300)[:, None]
-            out[:, :, a, k] = coef.real if k == 0 else np.abs(coef)
+        # pairs are grouped by centre, so (indptr, nbr) already is a CSR structure
+        ring = sp.csr_matrix((ring_w[:, a], nbr, indptr), shape=(n_centers, s.n_vertices))
+        total = ring @ weight_of_valid  # (c, channels): weight of the finite values only
+        with np.errstate(invalid="ignore", divide="ignore"):
+            for k in range(n_frequencies):
+                W = sp.csr_matrix((ring_w[:, a] * phase[:, k] * damp[k], nbr, indptr),
+                                  shape=(n_centers, s.n_vertices))
+                coef = np.where(total > 0, (W @ f2) / total, np.nan)
+                out[:, :, a, k] = coef.real if k == 0 else np.abs(coef)
     return out.reshape(n_centers, -1)

@@ -225,6 +225,14 @@ def test_patch_descriptor_of_linear_field_on_plane():
     assert np.all(d1[:, 1] > 0.01) and np.all(d1[:, 2] < 0.05 * d1[:, 1])
     with pytest.raises(ValueError):
         sk.patch_descriptors(s, x[:-1])
+    # non-finite values (curvature on the disk's rim is NaN) are left out of the pooling:
+    # a signal equal to 1 except NaN on the rim pools to exactly 1 near the rim
+    near_rim = int(np.argmin(np.linalg.norm(s.vertices - [0.8, 0, 0], axis=1)))
+    ones = np.where(np.isnan(sk.mean_curvature(s)), np.nan, 1.0)
+    assert np.isnan(ones).sum() == 180  # the 6·30 rim vertices
+    d = sk.patch_descriptors(s, np.c_[x, ones], radius=0.5, centers=[near_rim]).reshape(2, 4, 3)
+    assert np.allclose(d[0], sk.patch_descriptors(s, x, radius=0.5, centers=[near_rim]).reshape(4, 3))
+    assert np.allclose(d[1, :, 0], 1.0)
 
 
 def test_other_components_are_unreachable():
