@@ -119,6 +119,11 @@ def test_regional_table_csv_npz_and_fields(tmp_path):
     assert all(np.shape(v) == (base.n_vertices,) for v in f.values())
     np.testing.assert_allclose(np.c_[f["displacement_x"], f["displacement_y"], f["displacement_z"]],
                                rep.displacement)
+    # the fields go on the mesh as PLY vertex properties and come back unchanged
+    sk.save(base, tmp_path / "change.ply", fields=f)
+    _, loaded = sk.io.load_with_fields(tmp_path / "change.ply")
+    np.testing.assert_allclose(loaded["normal_displacement"], rep.normal_displacement, rtol=1e-6)
+    np.testing.assert_array_equal(loaded["label"], labels)
     # without labels there is one region covering the whole surface
     assert len(rep.regional_table(labels=np.zeros(base.n_vertices, int))) == 1
 

@@ -39,6 +39,8 @@ def test_planted_effect_found_with_fwer_control():
     # max-T p is never below the uncorrected p (definition of the max statistic)
     assert np.all(res.p_fwer >= res.p_uncorrected - 1e-12)
     assert res.summary()["note"].startswith("For research use only")
+    assert res.summary()["n_significant_fwer"] == int(np.sum(res.p_fwer < 0.05))
+    assert all(v.shape == (2000,) for v in res.fields().values())
 
 
 def test_uncorrected_p_matches_scipy_permutation_test():

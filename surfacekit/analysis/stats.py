@@ -45,6 +45,11 @@ class GroupTestResult:
             return self.q_fdr < alpha
         raise ValueError(f"correction must be 'fwer' or 'fdr', got {correction!r}")
 
+    def fields(self) -> dict:
+        """Per-vertex arrays for ``sk.save(template, path, fields=...)``."""
+        return {"t": self.t, "p_fwer": self.p_fwer, "q_fdr": self.q_fdr,
+                "p_uncorrected": self.p_uncorrected, "effect": self.effect}
+
     def summary(self, alpha: float = 0.05) -> dict:
         return {"n_vertices": int(self.t.shape[0]), "n_permutations": self.n_permutations,
                 "alternative": self.alternative, "df": self.df, "alpha": alpha,
