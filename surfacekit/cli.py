@@ -167,8 +167,11 @@ def _print_summary(ctx: Context, summary: dict) -> None:
     elif not ctx.quiet:
         for key, value in summary.items():
             if isinstance(value, dict):
-                value = ", ".join(f"{k}={_short(v)}" for k, v in value.items())
-            print(f"{key}: {_short(value)}")
+                print(f"{key}:")
+                for k, v in value.items():
+                    print(f"  {k}: {_short(v)}")
+            else:
+                print(f"{key}: {_short(value)}")
 
 
 def _short(v):

@@ -54,7 +54,7 @@ def _inspect(ctx: Context) -> dict:
     s = load_surface(ctx.args.mesh)
     summary = {"input": Path(ctx.args.mesh).name, **surface_facts(s)}
     quality = sk.quality_report(s)
-    summary["quality"] = quality.to_dict()
+    summary["quality"] = {k: v for k, v in quality.to_dict().items() if k != "warnings"}
     summary["warnings"] = list(quality.warnings)
     if target is not None:
         write_json(target, summary)

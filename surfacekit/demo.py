@@ -103,7 +103,21 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
     for d in (data, res, figdir):
         d.mkdir(parents=True, exist_ok=True)
     timings: dict[str, float] = {}
-    say = (lambda m: None) if quiet else (lambda m: print(f"demo: {m}", flush=True, file=sys.stderr))
+    from tqdm.auto import tqdm
+
+    # one bar step per stage; silent with --quiet or when stderr is not a terminal
+    bar = tqdm(total=7, desc="demo", unit="stage", leave=False,
+               disable=quiet or not sys.stderr.isatty())
+
+    started = []
+
+    def say(message: str) -> None:  # a new stage starts: the previous one is done
+        if started:
+            bar.update()
+        started.append(message)
+        if not quiet:
+            tqdm.write(f"demo: {message}", file=sys.stderr)
+
     say(f"writing the synthetic scenario ({size}) to {display_root or out}/data")
     scen = _timed(timings, "generate scenario", demo_data.write_scenario, data, size, seed)
     p, truth, sizes = scen["paths"], scen["truth"], scen["sizes"]
@@ -202,6 +216,8 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
                  figure_dir=figdir, provenance=provenance)
     for fig in figures.values():
         rfig.close(fig)
+    bar.update()
+    bar.close()
     return {"output": str(display_root or out), "report": "report.html",
             "figures": sorted(f.name for f in figdir.glob("*.png")),
             "manifest": "data/demo_cohort.csv", **{k: v for k, v in summary.items()},

@@ -83,6 +83,24 @@ def test_malformed_mesh_exit_2_one_line_no_output(tmp_path, capsys, case, name, 
     assert [p.name for p in (tmp_path / "out").iterdir()] == []  # no staging left behind
 
 
+@pytest.mark.parametrize("command", ["inspect", "prepare", "describe", "match", "change"])
+def test_every_mesh_command_refuses_a_malformed_mesh(tmp_path, meshes, capsys, command):
+    """Same corpus file (a PLY header promising more than the file holds) for each command."""
+    bad = tmp_path / "bad.ply"
+    bad.write_bytes(b"ply\nformat ascii 1.0\nelement vertex 9\nproperty float x\n"
+                    b"property float y\nproperty float z\nend_header\n0 0 0\n")
+    out = tmp_path / "out"
+    argv = {"inspect": ["inspect", bad, "-o", out / "q.json"],
+            "prepare": ["prepare", bad, "-o", out / "p.ply"],
+            "describe": ["describe", bad, "-o", out / "d.npz"],
+            "match": ["match", meshes / "base.ply", bad, "-o", out / "m.npz"],
+            "change": ["change", bad, meshes / "follow.ply", "-o", out / "c"]}[command]
+    code, _, err = run(argv, capsys)
+    assert code == 2
+    assert "bad.ply" in one_error_line(err)
+    assert not out.exists() or list(out.iterdir()) == []
+
+
 def test_malformed_mesh_through_the_installed_command(tmp_path, meshes):
     """The real console script: exit 2, one stderr line, no traceback, no output file."""
     bad = tmp_path / "broken.ply"

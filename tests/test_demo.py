@@ -72,6 +72,7 @@ def test_regions_and_bulge():
 
 
 @pytest.mark.slow
+@pytest.mark.timeout(1800)
 def test_full_demo_from_an_empty_folder(tmp_path):
     """`surfacekit demo` leaves the report, figures, meshes and a manifest `cohort` accepts."""
     env = {**os.environ, "PYTHONWARNINGS": "ignore"}
