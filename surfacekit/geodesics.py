@@ -83,7 +83,23 @@ class GeodesicSolver:
         if not s.is_edge_manifold:
             raise SurfaceError(f"geodesics need an edge-manifold mesh; "
                                f"{len(s.non_manifold_edges)} non-manifold edges (run sk.prepare)")
-        return np.ascontiguousarray(s.vertices), np.ascontiguousarray(s.faces)
+        # potpourri3d drops vertices used by no face: solve on the used ones and map back
+        used = np.unique(s.faces)
+        local = np.full(s.n_vertices, -1, dtype=np.int64)
+        local[used] = np.arange(used.size)
+        self._used, self._local = used, local
+        return np.ascontiguousarray(s.vertices[used]), np.ascontiguousarray(local[s.faces])
+
+    def _to_local(self, idx: np.ndarray) -> np.ndarray:
+        loc = self._local[idx]
+        if np.any(loc < 0):
+            raise ValueError(f"vertex {int(idx[np.argmax(loc < 0)])} belongs to no face")
+        return loc
+
+    def _scatter(self, values: np.ndarray, fill: float) -> np.ndarray:
+        out = np.full((self.surface.n_vertices,) + values.shape[1:], fill, dtype=np.float64)
+        out[self._used] = values
+        return out
 
     @property
     def heat(self):
@@ -114,11 +130,13 @@ class GeodesicSolver:
         """(n,) geodesic distance (vertex units) from the nearest of `sources` (vertex indices);
         ``inf`` on connected components that hold no source."""
         idx = _as_sources(self.surface, sources)
-        if idx.size == 1:
-            d = self.heat.compute_distance(int(idx[0]))
+        heat = self.heat
+        loc = self._to_local(idx)
+        if loc.size == 1:
+            d = heat.compute_distance(int(loc[0]))
         else:
-            d = self.heat.compute_distance_multisource([int(i) for i in idx])
-        d = np.maximum(np.asarray(d, dtype=np.float64), 0.0)
+            d = heat.compute_distance_multisource([int(i) for i in loc])
+        d = self._scatter(np.maximum(np.asarray(d, dtype=np.float64), 0.0), np.inf)
         d[idx] = 0.0
         # the heat method leaves a meaningless constant on components without a source
         d[~self._reachable(idx)] = np.inf
@@ -137,7 +155,9 @@ class GeodesicSolver:
         from the side the face normals (right-hand rule on the winding) point to.
         """
         c = int(_as_sources(self.surface, [center])[0])
-        log = np.asarray(self.vector_heat.compute_log_map(c), dtype=np.float64)
+        vector_heat = self.vector_heat
+        log = vector_heat.compute_log_map(int(self._to_local(np.array([c]))[0]))
+        log = self._scatter(np.asarray(log, dtype=np.float64), np.nan)
         log[~self._reachable(np.array([c]))] = np.nan
         return log * self._log_map_orientation()
 
@@ -206,11 +226,16 @@ def farthest_point_sampling(s: Surface, n: int, seed: int = 0, *, t_coef: float 
     solver = GeodesicSolver.for_surface(s, t_coef=t_coef)
     rng = np.random.default_rng(seed)
     samples = np.empty(n, dtype=np.int64)
-    samples[0] = rng.integers(s.n_vertices)
+    used = np.unique(s.faces)  # vertices of no face are never sampled
+    if n > used.size:
+        raise ValueError(f"n must be at most the {used.size} vertices used by faces, got {n}")
+    unused = np.ones(s.n_vertices, dtype=bool)
+    unused[used] = False
+    samples[0] = used[rng.integers(used.size)]
     nearest = solver.distance(samples[:1])
     for i in range(1, n):
         nearest[samples[:i]] = 0.0
-        samples[i] = int(np.argmax(nearest))
+        samples[i] = int(np.argmax(np.where(unused, -1.0, nearest)))
         nearest = np.minimum(nearest, solver.distance(samples[i:i + 1]))
     nearest[samples] = 0.0
     return (samples, nearest) if return_distances else samples

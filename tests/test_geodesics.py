@@ -245,3 +245,14 @@ def test_other_components_are_unreachable():
     assert len(set(s.vertex_components[samples])) == 2  # one sample per component
     idx, r, _ = sk.geodesic_polar_coordinates(s, 0, 10.0)
     assert idx.max() < a.n_vertices and r.max() < np.pi + 0.1
+
+
+def test_vertices_of_no_face_are_skipped():
+    """A vertex used by no face is unreachable (inf), never sampled, and not a valid source."""
+    a = sk.synthetic.icosphere(2)
+    s = sk.Surface(np.r_[[[5.0, 5.0, 5.0]], a.vertices], a.faces + 1)
+    d = sk.geodesic_distance(s, 1)
+    assert np.isinf(d[0]) and np.allclose(d[1:], sk.geodesic_distance(a, 0))
+    assert 0 not in sk.farthest_point_sampling(s, 20, seed=3)
+    with pytest.raises(ValueError, match="no face"):
+        sk.geodesic_distance(s, 0)
