@@ -6,9 +6,18 @@ manifest position, so the tables never depend on the engine or on timing.
 """
 from __future__ import annotations
 
+import json
 import multiprocessing
+import os
+import signal
+import subprocess
+import sys
+import tempfile
+import time
 from collections.abc import Iterator, Sequence
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from contextlib import contextmanager
+from pathlib import Path
 
 from .batch_subject import SubjectTask, one_line, run_subject
 
@@ -119,3 +128,60 @@ def engine_name(workers: int, scheduler: str | None) -> str:
     if scheduler:
         return f"dask:{scheduler}"
     return f"processes:{workers}" if workers > 1 else "in-process"
+
+
+def _stop_processes(procs: list[subprocess.Popen]) -> None:
+    """SIGTERM each started process group, then SIGKILL what is still alive after 20 s."""
+    for p in procs:
+        if p.poll() is None:
+            os.killpg(p.pid, signal.SIGTERM)
+    for p in procs:
+        try:
+            p.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            os.killpg(p.pid, signal.SIGKILL)
+            p.wait(timeout=10)
+
+
+@contextmanager
+def loopback_cluster(n_workers: int = 2, *, timeout: float = 120.0, log_dir=None):
+    """A Dask scheduler plus `n_workers` single-threaded workers on 127.0.0.1; yields the address.
+
+    Each is a separate process (``python -m distributed.cli.dask_scheduler`` /
+    ``dask_worker``), as on a real cluster; all are stopped on exit.  For trying
+    the Dask engine on one machine and for the tests.
+    """
+    try:
+        import distributed
+    except ImportError:
+        raise ImportError("a Dask cluster needs the 'cluster' extra: "
+                          "pip install 'surfacekit[cluster]'") from None
+    with tempfile.TemporaryDirectory(prefix="sk-dask-") as tmp:
+        logs = Path(log_dir or tmp)
+        scheduler_file = Path(tmp) / "scheduler.json"
+        procs: list[subprocess.Popen] = []
+
+        def start(args: list[str], name: str) -> None:
+            with open(logs / f"{name}.log", "wb") as log:
+                procs.append(subprocess.Popen([sys.executable, "-m", *args], stdout=log,
+                                              stderr=subprocess.STDOUT, start_new_session=True))
+
+        try:
+            start(["distributed.cli.dask_scheduler", "--host", "127.0.0.1", "--port", "0",
+                   "--no-dashboard", "--scheduler-file", str(scheduler_file)], "scheduler")
+            deadline = time.monotonic() + timeout
+            while not (scheduler_file.is_file() and scheduler_file.read_text().strip()):
+                if procs[0].poll() is not None or time.monotonic() > deadline:
+                    raise RuntimeError("Dask scheduler did not start; log: "
+                                       + (logs / "scheduler.log").read_text()[-500:])
+                time.sleep(0.2)
+            address = json.loads(scheduler_file.read_text())["address"]
+            for i in range(n_workers):
+                start(["distributed.cli.dask_worker", address, "--host", "127.0.0.1",
+                       "--nthreads", "1", "--no-dashboard", "--name", f"worker-{i}"],
+                      f"worker-{i}")
+            with distributed.Client(address, timeout=f"{int(timeout)}s") as client:
+                client.wait_for_workers(n_workers, timeout=timeout)
+            yield address
+        finally:
+            _stop_processes(procs)

@@ -11,7 +11,6 @@ scheduler plus workers started on loopback").
 from __future__ import annotations
 
 import filecmp
-import json
 import os
 import shutil
 import signal
@@ -24,6 +23,7 @@ import numpy as np
 import pytest
 
 import surfacekit as sk
+from surfacekit.batch_engines import loopback_cluster
 from surfacekit.batch_manifest import cache_key, format_value, read_manifest
 from surfacekit.batch_tables import covariate_matrix
 
@@ -266,48 +266,18 @@ def test_two_local_workers_give_identical_tables(cohort, tmp_path):
 
 
 def _start(cmd: list[str], log: Path) -> subprocess.Popen:
-    return subprocess.Popen(cmd, stdout=open(log, "wb"), stderr=subprocess.STDOUT,
-                            start_new_session=True)
-
-
-def _stop(procs: list[subprocess.Popen]) -> None:
-    for p in procs:
-        if p.poll() is None:
-            os.killpg(p.pid, signal.SIGTERM)
-    for p in procs:
-        try:
-            p.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            os.killpg(p.pid, signal.SIGKILL)
-            p.wait(timeout=10)
+    with open(log, "wb") as fh:
+        return subprocess.Popen(cmd, stdout=fh, stderr=subprocess.STDOUT, start_new_session=True)
 
 
 @pytest.mark.slow
 def test_dask_scheduler_and_workers_on_loopback_give_identical_tables(cohort, tmp_path):
     """A Dask scheduler plus two single-threaded workers, started as processes on 127.0.0.1."""
-    distributed = pytest.importorskip("distributed", reason="dask[distributed] not installed "
-                                      "(pip install 'surfacekit[cluster]')")
+    pytest.importorskip("distributed", reason="dask[distributed] not installed "
+                        "(pip install 'surfacekit[cluster]')")
     manifest, reference = cohort
-    scheduler_file = tmp_path / "scheduler.json"
-    procs = [_start([sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
-                     "--port", "0", "--no-dashboard", "--scheduler-file", str(scheduler_file)],
-                    tmp_path / "scheduler.log")]
-    try:
-        deadline = time.monotonic() + 60
-        while not scheduler_file.is_file() or not scheduler_file.read_text().strip():
-            assert procs[0].poll() is None, (tmp_path / "scheduler.log").read_text()
-            assert time.monotonic() < deadline, "Dask scheduler did not start in 60 s"
-            time.sleep(0.2)
-        address = json.loads(scheduler_file.read_text())["address"]
-        for i in range(2):
-            procs.append(_start([sys.executable, "-m", "distributed.cli.dask_worker", address,
-                                 "--host", "127.0.0.1", "--nthreads", "1", "--no-dashboard",
-                                 "--name", f"w{i}"], tmp_path / f"worker{i}.log"))
-        with distributed.Client(address, timeout="30s") as client:
-            client.wait_for_workers(2, timeout=120)
+    with loopback_cluster(2, log_dir=tmp_path) as address:
         result = sk.run_cohort(manifest, tmp_path / "dask", scheduler=address, **RUN_OPTIONS)
-    finally:
-        _stop(procs)
     assert result.engine == f"dask:{address}" and result.n_failed == 2
     _same_tables(reference.output_dir, tmp_path / "dask")
 
@@ -328,8 +298,7 @@ def test_killed_run_resumes_without_recomputing_finished_subjects(cohort, tmp_pa
             assert time.monotonic() < deadline, "no two subjects finished in 300 s"
             time.sleep(0.05)
     finally:
-        _stop_now = proc.poll() is None
-        if _stop_now:
+        if proc.poll() is None:
             os.killpg(proc.pid, signal.SIGKILL)
         proc.wait(timeout=30)
     markers = {p: p.stat().st_mtime_ns for p in out.glob("subjects/*/*.done")}
