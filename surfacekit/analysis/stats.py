@@ -109,8 +109,8 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     error control by the maximum statistic over vertices (Nichols & Holmes, Hum.
     Brain Mapp. 2002): ``p_fwer = (1 + #{max_perm >= stat}) / (1 + n_permutations)``.
     q-values: Benjamini & Hochberg (1995) applied to the per-vertex permutation
-    p-values (same +1 rule).  Vectorised: each chunk of permutations is two
-    matrix products, ``(chunk·p, n) @ (n, v)``.
+    p-values (same +1 rule).  Vectorised: each chunk of permutations is one
+    matrix product ``(chunk·p, n) @ (n, v)``.
 
     Parameters
     ----------
@@ -150,6 +150,7 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     pinv_x = np.linalg.pinv(x)
     contrast_w = pinv_x[0]                          # β1 = w · y
     var_factor = float(contrast_w @ contrast_w)     # (XᵀX)⁻¹ entry of β1
+    contrast_in_q = qx.T @ contrast_w               # w lies in span(X): w = Qx a
     qz, _ = np.linalg.qr(z)
     resid_z = y - qz @ (qz.T @ y)                   # reduced-model residuals (Freedman–Lane)
     ss_total = np.einsum("ij,ij->j", resid_z, resid_z)
@@ -157,13 +158,12 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     def t_stats(perms: np.ndarray) -> np.ndarray:
         # Data y* = Ẑ + P r: the Z-fitted part lies in span(X), so it leaves both
         # β1 and the full-model residuals unchanged; only P r matters.
+        # Rows of Qxᵀ P (one (p, n) block per permutation), one matrix product for all.
         c = perms.shape[0]
-        wp = np.empty((c, n))
-        wp[np.arange(c)[:, None], perms] = contrast_w  # row i: Pᵀw for permutation i
-        beta = wp @ resid_z                             # (c, v)
         qp = np.empty((c, p, n))
         qp[np.arange(c)[:, None, None], np.arange(p)[None, :, None], perms[:, None, :]] = qx.T
         proj = (qp.reshape(c * p, n) @ resid_z).reshape(c, p, -1)
+        beta = np.einsum("k,ckv->cv", contrast_in_q, proj)  # β1 = wᵀ P r with w = Qx a
         rss = np.maximum(ss_total - np.einsum("cpv,cpv->cv", proj, proj), 0.0)
         se = np.sqrt(rss / df * var_factor)
         return np.divide(beta, se, out=np.zeros_like(beta), where=se > 0)
