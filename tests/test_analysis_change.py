@@ -155,3 +155,22 @@ def test_bulge_end_to_end_with_match():
     # measured here: ~1.2 degrees of tangential pose error left by the map (normal
     # residuals constrain tilt, not sliding); allow 2.3 degrees
     np.testing.assert_allclose(rep.rigid[:3, :3], R.T, atol=0.04)
+
+
+def test_closest_point_projection_matches_trimesh():
+    # Reference: trimesh.proximity.closest_point (exact point-triangle distance, trimesh).
+    import trimesh
+
+    from surfacekit.analysis import _geometry as geo
+
+    s, _ = sk.synthetic.organ_surface("kidney", 400, seed=2)
+    rng = np.random.default_rng(0)
+    pts = s.vertices[rng.choice(s.n_vertices, 60)] + rng.normal(scale=4.0, size=(60, 3))
+    seeds = np.zeros(60, dtype=np.int64)
+    all_faces = (np.repeat(np.arange(60), s.n_faces), np.tile(np.arange(s.n_faces), 60))
+    ours = geo.project_pairs(pts, s.vertices, s.faces, all_faces)
+    _, ref_dist, _ = trimesh.proximity.closest_point(s.to_trimesh(), pts)
+    np.testing.assert_allclose(np.linalg.norm(ours - pts, axis=1), ref_dist, atol=1e-9)
+    # the neighbourhood search is the same with candidates from the seed's rings
+    near = geo.near_faces(s, seeds, rings=1)
+    assert np.all(np.diff(near[0]) >= 0) and len(near[0]) == 60 * len(np.unique(near[1]))

@@ -89,29 +89,31 @@ def closest_point_on_triangles(p: np.ndarray, a: np.ndarray, b: np.ndarray,
     return q
 
 
-def project_near(points: np.ndarray, s: Surface, seeds: np.ndarray, rings: int = 2) -> np.ndarray:
-    """Closest point on `s` to each point, searching the faces near its seed vertex.
+def near_faces(s: Surface, seeds: np.ndarray, rings: int = 2) -> tuple[np.ndarray, np.ndarray]:
+    """Candidate (query, face) pairs: faces touching the `rings`-ring of each seed vertex.
 
-    Parameters
-    ----------
-    points : (k, 3) query points (mm)
-    s : the surface projected onto
-    seeds : (k,) vertex of `s` near which each point's foot is searched
-    rings : size of the searched neighbourhood (faces touching the `rings`-ring)
-
-    Returns
-    -------
-    (k, 3) closest points on `s` (mm)
+    Returns query indices (sorted ascending) and face indices, both (p,).
     """
-    near = ring_faces(s, rings)[seeds].tocoo()
-    qi, fi = near.row, near.col
-    v, f = s.vertices, s.faces
+    near = ring_faces(s, rings)[np.asarray(seeds)].tocsr()
+    near.sort_indices()
+    qi = np.repeat(np.arange(near.shape[0]), np.diff(near.indptr))
+    return qi, near.indices.astype(np.int64)
+
+
+def project_pairs(points: np.ndarray, vertices: np.ndarray, faces: np.ndarray,
+                  pairs: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
+    """Closest point to each query point among its candidate faces (see `near_faces`), (k, 3)."""
+    qi, fi = pairs
+    v, f = vertices, faces
     cand = closest_point_on_triangles(points[qi], v[f[fi, 0]], v[f[fi, 1]], v[f[fi, 2]])
     d2 = np.sum((cand - points[qi]) ** 2, axis=1)
-    order = np.lexsort((d2, qi))  # per query, nearest candidate first
-    first = np.r_[True, qi[order][1:] != qi[order][:-1]]
-    best = order[first]
-    out = np.empty_like(points, dtype=np.float64)
+    new_query = np.r_[True, qi[1:] != qi[:-1]]
+    segment = np.cumsum(new_query) - 1
+    is_min = d2 == np.minimum.reduceat(d2, np.flatnonzero(new_query))[segment]
+    hit = np.flatnonzero(is_min)
+    _, first = np.unique(qi[hit], return_index=True)  # first minimum of each query
+    best = hit[first]
+    out = np.empty((len(points), 3))
     out[qi[best]] = cand[best]
     return out
 

@@ -179,16 +179,16 @@ def _check_labels(labels, n: int) -> np.ndarray | None:
     return lab.astype(np.int64)
 
 
-def _mapped_points(baseline: Surface, moved: Surface, s2t: np.ndarray, rings: int,
-                   sigma: float) -> np.ndarray:
+def _mapped_points(baseline: Surface, moved: np.ndarray, faces: np.ndarray, s2t: np.ndarray,
+                   pairs, sigma: float) -> np.ndarray:
     """(n, 3) sub-vertex mapped points of the baseline vertices on the aligned follow-up."""
-    raw = moved.vertices[s2t] - baseline.vertices
+    raw = moved[s2t] - baseline.vertices
     smooth = geo.heat_smooth(baseline, raw, sigma)
-    return geo.project_near(baseline.vertices + smooth, moved, s2t, rings=rings)
+    return geo.project_pairs(baseline.vertices + smooth, moved, faces, pairs)
 
 
-def _refine_pose(baseline: Surface, followup: Surface, s2t: np.ndarray, conf: np.ndarray,
-                 pose: Transform, rings: int, max_rounds: int = 10, tol_mm: float = 1e-3):
+def _refine_pose(baseline: Surface, followup: Surface, pairs, conf: np.ndarray,
+                 pose: Transform, max_rounds: int = 10, tol_mm: float = 1e-3):
     """Refine the rigid pose by robust point-to-surface rounds along the baseline normals.
 
     A vertex-level map is off by up to an edge (and by smooth tangential drift
@@ -200,20 +200,20 @@ def _refine_pose(baseline: Surface, followup: Surface, s2t: np.ndarray, conf: np
     Tukey-weighted Kabsch pose, so a changing region still gets weight ~0.
     Tangential offsets are not used: on near-symmetric shapes (a growing sphere)
     closest points would let the pose slide; the tangential pose comes from the map.
-    Returns (pose, moved follow-up, rounds used).
+    Returns (pose, moved follow-up vertices, rounds used).
     """
-    moved = followup.copy_with(vertices=pose.apply(followup.vertices))
+    moved = pose.apply(followup.vertices)
     normals = geo.outward_vertex_normals(baseline)
     rounds = 0
     for rounds in range(1, max_rounds + 1):
-        foot = geo.project_near(baseline.vertices, moved, s2t, rings=rings)
+        foot = geo.project_pairs(baseline.vertices, moved, followup.faces, pairs)
         h = np.einsum("ij,ij->i", foot - baseline.vertices, normals)
         target = baseline.vertices + h[:, None] * normals
         step = rigid_transform(target, baseline.vertices, weights=conf)
         new_pose = Transform(step.rotation @ pose.rotation,
                              step.rotation @ pose.translation + step.translation,
                              1.0, step.weights, step.rms, step.n_iter)
-        moved = followup.copy_with(vertices=new_pose.apply(followup.vertices))
+        moved = new_pose.apply(followup.vertices)
         shift = np.abs(step.apply(baseline.vertices) - baseline.vertices).max()
         pose = new_pose
         if shift < tol_mm:
@@ -283,10 +283,11 @@ def measure_change(baseline: Surface, followup: Surface, corr=None, *,
     # 2. rigid motion follow-up -> baseline frame, robust to the changing region
     pose = rigid_transform(followup.vertices[s2t], baseline.vertices, weights=conf)
     sigma = 2.0 * baseline.mean_edge_length if smoothing is None else float(smoothing)
-    pose, moved, n_refine = _refine_pose(baseline, followup, s2t, conf, pose, rings)
+    pairs = geo.near_faces(followup, s2t, rings)  # the search neighbourhoods, fixed
+    pose, moved, n_refine = _refine_pose(baseline, followup, pairs, conf, pose)
 
     # 3. sub-vertex mapped points
-    mapped = _mapped_points(baseline, moved, s2t, rings, sigma)
+    mapped = _mapped_points(baseline, moved, followup.faces, s2t, pairs, sigma)
     displacement = mapped - baseline.vertices
 
     # 4. along the outward normal
