@@ -1,6 +1,7 @@
 """Cohort throughput: 1 vs 2 local workers, peak memory per worker, cluster size for 10,000 subjects.
 
 Run:  python benchmarks/bench_cohort.py [--subjects 6] [--vertices 20000] [--workers 1 2]
+      [--dask] [--manifest demo_cohort.csv]
 
 A synthetic cohort (kidney-like surfaces of ``--vertices`` vertices, different
 triangulations, sizes and local bulges; labelled synthetic) is written to a
@@ -12,6 +13,9 @@ peak resident memory of each worker process (``getrusage`` in the worker); then
 the speed-up of N workers over 1 in this same run (target: >= 1.4x for 2 workers
 on a 2-core machine), whether the CSV tables are byte-identical, and the number of
 single-threaded workers (and memory) a 10,000-subject cohort needs to finish in 12 hours.
+``--dask`` adds a run on a Dask scheduler plus one worker per ``max(--workers)``
+started on 127.0.0.1; ``--manifest`` benchmarks an existing cohort (e.g. the demo's)
+instead of the synthetic one.
 Timings on a shared machine are inflated by other load; rerun on an idle one.
 """
 from __future__ import annotations
@@ -53,6 +57,13 @@ def write_cohort(folder: Path, n_subjects: int, n_vertices: int) -> Path:
     return manifest
 
 
+def same_tables(a: Path, b: Path) -> bool:
+    """Both runs wrote the same CSV tables, byte for byte."""
+    names = {p.name for p in (*a.glob("*.csv"), *b.glob("*.csv"))}
+    return all((a / n).is_file() and (b / n).is_file() and filecmp.cmp(a / n, b / n, shallow=False)
+               for n in names)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--subjects", type=int, default=6)
@@ -60,6 +71,8 @@ def main() -> None:
     ap.add_argument("--workers", type=int, nargs="+", default=[1, 2])
     ap.add_argument("--cohort-size", type=int, default=10000)
     ap.add_argument("--hours", type=float, default=12.0)
+    ap.add_argument("--dask", action="store_true", help="also run on a loopback Dask cluster")
+    ap.add_argument("--manifest", type=Path, help="benchmark this cohort manifest instead")
     args = ap.parse_args()
 
     options = {"target_vertices": args.vertices, "n_permutations": 1000, "progress": False}
@@ -67,7 +80,11 @@ def main() -> None:
     try:
         data = root / "data"
         data.mkdir()
-        manifest = write_cohort(data, args.subjects, args.vertices)
+        if args.manifest:
+            manifest = args.manifest.resolve()
+            args.subjects = len(read_manifest(manifest).subjects)
+        else:
+            manifest = write_cohort(data, args.subjects, args.vertices)
         # prepare the template once, as a cohort does, outside the timed runs
         warm = root / "warm"
         t0 = time.perf_counter()
@@ -75,28 +92,37 @@ def main() -> None:
                          pipeline_options(args.vertices, 50, 0))
         print(f"cohort: {args.subjects} subjects x {args.vertices} vertices, "
               f"{os.cpu_count()} CPUs; template prepared in {time.perf_counter() - t0:.1f} s")
-        results = {}
-        for w in args.workers:
-            out = root / f"w{w}"
+        def timed(name: str, **engine) -> tuple:
+            out = root / name
             shutil.copytree(warm / "template", out / "template")
             t0 = time.perf_counter()
-            res = sk.run_cohort(manifest, out, workers=w, **options)
+            res = sk.run_cohort(manifest, out, **engine, **options)
             wall = time.perf_counter() - t0
             assert res.n_failed == 0, res.failed
-            results[w] = (res, wall, out)
             per = {s: v / res.n_computed for s, v in res.stage_seconds.items()}
             rss = sorted(res.peak_rss_mb.values())
-            print(f"workers={w}: {wall:.1f} s, {60 * args.subjects / wall:.2f} subjects/min; "
+            print(f"{name}: {wall:.1f} s, {60 * args.subjects / wall:.2f} subjects/min; "
                   f"mean s/subject: " + ", ".join(f"{k} {v:.2f}" for k, v in per.items()))
             print(f"  peak RSS per worker process (MiB): {', '.join(f'{r:.0f}' for r in rss)}")
+            return res, wall, out
+
+        results = {w: timed(f"workers={w}", workers=w) for w in args.workers}
         _base, base_wall, base_out = results[min(results)]
         for w, (res, wall, out) in results.items():
             if w == min(results):
                 continue
-            same = all(filecmp.cmp(base_out / f, out / f, shallow=False)
-                       for f in ("cohort_summary.csv", "group_test.csv"))
+            same = same_tables(base_out, out)
             print(f"speed-up {w} workers vs {min(results)}: {base_wall / wall:.2f}x "
                   f"(target >= 1.4x for 2 workers); CSV tables byte-identical: {same}")
+        if args.dask:
+            from surfacekit.batch_engines import loopback_cluster
+
+            n = max(args.workers)
+            with loopback_cluster(n) as address:
+                _res, wall, out = timed(f"dask-{n}-workers", scheduler=address)
+            same = same_tables(base_out, out)
+            print(f"speed-up Dask ({n} workers) vs {min(results)} local: {base_wall / wall:.2f}x; "
+                  f"CSV tables byte-identical: {same}")
         # cluster size: one single-threaded worker per core does one subject at a time
         per_subject = base_wall / args.subjects * min(results)       # worker-seconds per subject
         peak = max(max(r.peak_rss_mb.values()) for r, _, _ in results.values())
