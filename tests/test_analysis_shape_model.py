@@ -101,6 +101,16 @@ def test_pca_recovers_planted_modes_in_order():
     assert model.sample(3, seed=2).shape == (3, x.shape[0], 3)
 
 
+def test_shape_model_save_load(tmp_path):
+    s, _ = _template(100)
+    rng = np.random.default_rng(0)
+    model = sk.shape_model(s.vertices + rng.normal(size=(5, 100, 3)))
+    model.save(tmp_path / "model.npz")
+    back = sk.ShapeModel.load(tmp_path / "model.npz")
+    np.testing.assert_array_equal(back.modes, model.modes)
+    np.testing.assert_array_equal(back.compactness(), model.compactness())
+
+
 def test_bad_shapes():
     with pytest.raises(ValueError, match="shape"):
         sk.generalized_procrustes(np.zeros((3, 10)))

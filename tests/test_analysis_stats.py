@@ -94,6 +94,17 @@ def test_family_wise_error_rate_under_the_null():
     assert rejected <= 9  # P(Binomial(60, 0.05) > 9) < 0.2%
 
 
+def test_save_and_load(tmp_path):
+    a, b, _ = _planted(seed=3, n_vertices=50)
+    res = sk.vertexwise_group_test(a, b, n_permutations=99, seed=2, covariates=np.arange(24.0))
+    res.save(tmp_path / "test.npz")
+    back = sk.GroupTestResult.load(tmp_path / "test.npz")
+    np.testing.assert_array_equal(back.p_fwer, res.p_fwer)
+    assert back.summary() == res.summary()
+    with pytest.raises(ValueError, match="not a saved"):
+        sk.GroupTestResult.load(tmp_path / "missing.npz")
+
+
 def test_deterministic_one_sided_and_chunking():
     a, b, hit = _planted(seed=2, n_vertices=300)
     r1 = sk.vertexwise_group_test(a, b, n_permutations=300, seed=5, chunk_size=7)

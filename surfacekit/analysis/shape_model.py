@@ -155,6 +155,23 @@ class ShapeModel:
         b = rng.standard_normal((n_samples, k)) * np.sqrt(self.variances[:k])
         return self.mean + np.tensordot(b, self.modes[:k], axes=1)
 
+    def save(self, path):
+        """Save to NPZ (no pickle); reload with :meth:`load`."""
+        from ..io import save_fields
+
+        return save_fields(path, mean=self.mean, modes=self.modes, variances=self.variances,
+                           training=self.training)
+
+    @classmethod
+    def load(cls, path) -> ShapeModel:
+        from ..io import load_fields
+
+        try:
+            a = load_fields(path)
+            return cls(a["mean"], a["modes"], a["variances"], a["training"])
+        except (KeyError, ValueError, OSError) as exc:
+            raise ValueError(f"{path} is not a saved ShapeModel: {exc}") from None
+
     # ------------------------------------------------------------ model quality
     def compactness(self) -> np.ndarray:
         """(k,) cumulative variance fraction C(M) for M = 1..k (Davies et al., IEEE TMI 2002)."""

@@ -4,6 +4,7 @@ For research use only; not for diagnosis or treatment decisions.
 """
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -49,6 +50,28 @@ class GroupTestResult:
         """Per-vertex arrays for ``sk.save(template, path, fields=...)``."""
         return {"t": self.t, "p_fwer": self.p_fwer, "q_fdr": self.q_fdr,
                 "p_uncorrected": self.p_uncorrected, "effect": self.effect}
+
+    def save(self, path):
+        """Save to NPZ (arrays plus JSON settings, no pickle); reload with :meth:`load`."""
+        from ..io import save_fields
+
+        meta = {"n_permutations": self.n_permutations, "alternative": self.alternative,
+                "df": self.df, "info": self.info, "note": RESEARCH_NOTE}
+        return save_fields(path, **self.fields(), max_null=self.max_null,
+                           meta=np.array(json.dumps(meta, sort_keys=True)))
+
+    @classmethod
+    def load(cls, path) -> GroupTestResult:
+        from ..io import load_fields
+
+        try:
+            a = load_fields(path)
+            meta = json.loads(str(a["meta"]))
+            return cls(a["t"], a["p_fwer"], a["q_fdr"], a["p_uncorrected"], a["effect"],
+                       a["max_null"], meta["n_permutations"], meta["alternative"], meta["df"],
+                       meta["info"])
+        except (KeyError, ValueError, OSError) as exc:
+            raise ValueError(f"{path} is not a saved GroupTestResult: {exc}") from None
 
     def summary(self, alpha: float = 0.05) -> dict:
         return {"n_vertices": int(self.t.shape[0]), "n_permutations": self.n_permutations,
