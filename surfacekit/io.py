@@ -204,12 +204,12 @@ _READERS = {".ply": read_ply, ".obj": read_obj, ".stl": read_stl, ".off": read_o
 _PARSE_ERRORS = (ValueError, IndexError, KeyError, OverflowError, UnicodeDecodeError)
 
 
-def _align_sidecar(vertices: np.ndarray, side: dict, name: str) -> dict:
+def _align_sidecar(vertices: np.ndarray, side: dict) -> dict:
     """Fields from a sidecar, reordered to the loaded vertices (STL welding reorders them)."""
     stored = side.get("vertices")
     fields = {k[len("fields/"):]: v for k, v in side.items() if k.startswith("fields/")}
     if stored is None or stored.ndim != 2 or stored.shape[1:] != (3,):
-        raise SurfaceError(f"{name}: sidecar lacks the vertices it was written for")
+        raise SurfaceError("sidecar lacks the vertices it was written for")
     if stored.shape == vertices.shape and np.array_equal(stored, vertices):
         return fields
     from scipy.spatial import cKDTree
@@ -217,7 +217,7 @@ def _align_sidecar(vertices: np.ndarray, side: dict, name: str) -> dict:
     dist, idx = cKDTree(stored).query(vertices)
     scale = float(np.abs(vertices).max()) + 1.0
     if not np.all(dist <= 4 * np.finfo(np.float32).eps * scale):
-        raise SurfaceError(f"{name}: sidecar fields do not match the mesh vertices")
+        raise SurfaceError("sidecar fields do not match the mesh vertices")
     return {k: np.asarray(v)[idx] for k, v in fields.items()}
 
 
@@ -270,9 +270,14 @@ def load_with_fields(path) -> tuple[Surface, dict]:
     diag = float(np.linalg.norm(surface.bounds[1] - surface.bounds[0]))
     if not np.any(area > 1e-12 * diag * diag):
         raise SurfaceError(f"{path.name}: only degenerate faces (all {surface.n_faces} have zero area)")
-    if suffix not in _NATIVE_FIELDS and sidecar_path(path).is_file():
-        fields = _align_sidecar(surface.vertices, _npz_arrays(sidecar_path(path)), path.name)
+    side = sidecar_path(path)
     try:
+        if suffix not in _NATIVE_FIELDS and side.is_file():
+            try:
+                arrays = _npz_arrays(side)
+            except SurfaceError as exc:
+                raise SurfaceError(f"sidecar {side.name}: {exc}") from None
+            fields = _align_sidecar(surface.vertices, arrays)
         fields = validate_fields(fields, surface.n_vertices)
     except SurfaceError as exc:
         raise SurfaceError(f"{path.name}: {exc}") from None

@@ -142,7 +142,7 @@ def field_columns(fields: dict, n: int) -> list[tuple[str, np.ndarray]]:
 
 
 def column_type(a: np.ndarray) -> str:
-    """PLY type for a field column: float (float32), double for float64 data, int for integers."""
+    """PLY type for a field column: ``int`` (int32) for integer and boolean data, else ``float``."""
     if a.dtype.kind == "b" or a.dtype.kind in "iu":
         return "int"
     return "float"
@@ -234,26 +234,32 @@ def _ascii_element(tokens, pos, name, count, props):
                 li += 1
         if ok:
             return cols, [(nm, cn, v.ravel()) for nm, cn, v in lists], end
-    # Irregular rows (mixed polygons): walk, bounded by the token count.
+    # Irregular rows (mixed polygons): walk, bounded by the token count.  PLY data is all
+    # numeric, so the rest of the body is converted once and the walk only indexes it.
+    nums = to_numbers(tokens[pos:], np.float64, f"PLY {name} data")
     cols = {p[0]: np.empty(count) for p in props if p[2] is None}
     lists = {p[0]: ([], []) for p in props if p[2] is not None}
+    q = 0
     for r in range(count):
         for p in props:
-            if pos >= len(tokens):
+            if q >= nums.size:
                 raise SurfaceError(f"PLY {name} data ends early at row {r} of {count}")
             if p[2] is None:
-                cols[p[0]][r] = to_numbers(tokens[pos:pos + 1], np.float64, f"PLY {name}")[0]
-                pos += 1
-            else:
-                ln = int(to_numbers(tokens[pos:pos + 1], np.int64, f"PLY {name} list count")[0])
-                if ln < 0 or pos + 1 + ln > len(tokens):
-                    raise SurfaceError(f"PLY {name} row {r} has a bad list length {ln}")
-                lists[p[0]][0].append(ln)
-                lists[p[0]][1].extend(tokens[pos + 1: pos + 1 + ln])
-                pos += 1 + ln
-    out_lists = [(nm, np.array(cn, np.int64), to_numbers(fl, np.float64, f"PLY {name}"))
-                 for nm, (cn, fl) in lists.items()]
-    return cols, out_lists, pos
+                cols[p[0]][r] = nums[q]
+                q += 1
+                continue
+            ln = nums[q]
+            if not (0 <= ln <= nums.size - q - 1) or ln != int(ln):
+                raise SurfaceError(f"PLY {name} row {r} has a bad list length {ln}")
+            lists[p[0]][0].append(int(ln))
+            lists[p[0]][1].append(q + 1)
+            q += 1 + int(ln)
+    out_lists = []
+    for nm, (lengths, starts) in lists.items():
+        lengths = np.array(lengths, np.int64)
+        offsets = np.arange(int(lengths.sum())) - np.repeat(np.cumsum(lengths) - lengths, lengths)
+        out_lists.append((nm, lengths, nums[np.repeat(np.array(starts, np.int64), lengths) + offsets]))
+    return cols, out_lists, pos + q
 
 
 def _binary_element(data, pos, name, count, props, endian):

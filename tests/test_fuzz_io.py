@@ -11,6 +11,7 @@ the machine.  About 2300 cases in total.
 """
 from __future__ import annotations
 
+import os
 import resource
 import tempfile
 from datetime import timedelta
@@ -25,7 +26,9 @@ from hypothesis.extra import numpy as hnp
 import surfacekit as sk
 from surfacekit.io import load_with_fields
 
-FUZZ = settings(max_examples=150, deadline=timedelta(seconds=5), derandomize=True,
+# SURFACEKIT_FUZZ_SCALE=20 runs 20x more (random, not derandomized) examples for a deeper search.
+SCALE = int(os.environ.get("SURFACEKIT_FUZZ_SCALE", "1"))
+FUZZ = settings(max_examples=150 * SCALE, deadline=timedelta(seconds=5), derandomize=SCALE == 1,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture],
                 database=None)
 SEEDS = ["ply-bin", "ply-ascii", "vtk-bin", "vtk-ascii", "stl-bin", "stl-ascii", "obj", "off",
@@ -135,7 +138,7 @@ def test_random_bytes(suffix, workdir):
              ".off": b"OFF\n", ".gii": b"<?xml version='1.0'?><GIFTI>", ".vtk":
              b"# vtk DataFile Version 3.0\nx\nASCII\nDATASET POLYDATA\n", ".npz": b"PK\x03\x04"}
 
-    @settings(FUZZ, max_examples=60)
+    @settings(FUZZ, max_examples=60 * SCALE)
     @given(st.binary(max_size=600), st.booleans())
     def run(data, with_magic):
         check_load(workdir, suffix, (magic[suffix] if with_magic else b"") + data)
@@ -175,7 +178,7 @@ def test_token_replacement_in_text_files(seed, seeds, workdir):
     suffix, data = seeds[seed]
     lines = data.split(b"\n")
 
-    @settings(FUZZ, max_examples=50)
+    @settings(FUZZ, max_examples=50 * SCALE)
     @given(st.lists(st.tuples(st.integers(0, len(lines) - 1), st.integers(0, 8),
                               st.sampled_from(NASTY + [b"0", b"-0", b"1e-400", b"abc"])),
                     min_size=1, max_size=3))

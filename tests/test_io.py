@@ -466,6 +466,11 @@ def test_pickle_bearing_npz_is_refused_not_executed(tmp_path):
         sk.load(tmp_path / "evil.npz")
     with pytest.raises(sk.SurfaceError, match="pickle"):
         sk.load_fields(tmp_path / "evil.fields.npz")
+    host = tmp_path / "host.obj"  # a sidecar is read through the same refusal
+    host.write_bytes(b"v 0 0 0\nv 1 0 0\nv 0 1 0\nf 1 2 3\n")
+    os.replace(tmp_path / "evil.fields.npz", sidecar_path(host))
+    with pytest.raises(sk.SurfaceError, match="sidecar .*pickle"):
+        load_with_fields(host)
     assert not marker.exists()
 
 
