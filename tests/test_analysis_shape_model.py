@@ -92,9 +92,14 @@ def test_pca_recovers_planted_modes_in_order():
     c = model.compactness()
     assert np.all(np.diff(c) >= 0) and c[-1] == pytest.approx(1.0) and c[1] > 0.98
     g = model.generalisation(max_modes=4)
-    assert g[0] > g[1] > g[2] * 0.999 and g[1] < 0.2
+    # Analytic: with both modes kept, a left-out shape is rebuilt up to its isotropic
+    # noise (σ = 0.05 mm per coordinate), whose mean vertex norm is the Maxwell mean
+    # 2σ·sqrt(2/π) ≈ 0.080 mm; one mode leaves the second mode's amplitude.
+    assert g[1] == pytest.approx(0.05 * 2 * np.sqrt(2 / np.pi), rel=0.05)
+    assert g[0] > 3 * g[1]
     sp_ = model.specificity(n_samples=50, max_modes=3, seed=0)
-    assert sp_.shape == (3,) and np.all(sp_ > 0)
+    # model samples carry no noise, training shapes do: specificity is above the noise norm
+    assert sp_.shape == (3,) and np.all(sp_ > 0.08)
     # a shape built from the model is reproduced by projection
     b = np.array([30.0, -10.0])
     np.testing.assert_allclose(model.project(model.reconstruct(b), 2), b, atol=1e-9)
