@@ -12,7 +12,7 @@ written in manifest order (``cohort_summary.csv``, ``cohort_fields.npz``,
 Layout of ``output_dir``::
 
     template/template.npz, template.ply, <key>.done
-    subjects/<id>/fields.npz, prepared.ply, row.json, timings.json, <key>.done
+    subjects/<id>/fields.npz, prepared.ply, on_template.ply, row.json, timings.json, <key>.done
     cohort_summary.csv  cohort_fields.npz  group_test.csv  run_summary.json
 
 For research use only; not for diagnosis or treatment decisions.

@@ -14,6 +14,7 @@ import subprocess
 import sys
 import tempfile
 import time
+import uuid
 from collections.abc import Iterator, Sequence
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from contextlib import contextmanager
@@ -96,9 +97,10 @@ def run_dask(tasks: Sequence[SubjectTask], scheduler: str) -> Iterator[dict]:
     except ImportError:
         raise ImportError("the Dask engine needs the 'cluster' extra: "
                           "pip install 'surfacekit[cluster]'") from None
+    token = uuid.uuid4().hex[:8]  # never pick up a result another run left on the scheduler
     with Client(scheduler, timeout="30s") as client:
         futures = client.map(run_subject, list(tasks), pure=False,
-                             key=[f"surfacekit-subject-{t.subject}-{t.key}" for t in tasks])
+                             key=[f"surfacekit-{t.subject}-{t.key}-{token}" for t in tasks])
         by_key = {f.key: t for f, t in zip(futures, tasks)}
         try:
             for fut in as_completed(futures):

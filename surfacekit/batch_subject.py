@@ -185,12 +185,17 @@ def _compute(task: SubjectTask, timings: dict):
 
 
 def write_subject(task: SubjectTask, subject, fields: dict, scalars: dict, timings: dict) -> None:
-    """Write fields, the prepared mesh, the row and, last, the completion marker."""
+    """Write fields (NPZ, exact), the prepared mesh and the fields on the template (PLY),
+    the row and, last, the completion marker."""
     import surfacekit as sk
 
     out = Path(task.subject_dir)
     save_npz_deterministic(out / "fields.npz", fields)
     sk.save(subject, out / "prepared.ply")
+    template = load_template(task.template_file, task.template_key)[0]
+    # the change fields as vertex properties of the template mesh, for viewers
+    sk.save(template, out / "on_template.ply",
+            fields={k: fields[k] for k in ("normal_displacement", "log_area_ratio")})
     write_json(out / "row.json", {"subject": task.subject, "key": task.key, "values": scalars})
     with atomic_path(out / f"{task.key}{MARKER_SUFFIX}", suffix=MARKER_SUFFIX) as tmp:
         tmp.write_text(task.key + "\n")

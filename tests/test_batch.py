@@ -207,6 +207,10 @@ def test_cohort_rows_failures_and_reference_values(cohort):
     per_subject = sk.load_fields(out / "subjects" / "k2" / "fields.npz")
     np.testing.assert_array_equal(fields["normal_displacement"][5],
                                   per_subject["normal_displacement"])
+    viewable, on_template = sk.io.load_with_fields(out / "subjects" / "k2" / "on_template.ply")
+    assert viewable.n_vertices == template.n_vertices
+    np.testing.assert_allclose(on_template["normal_displacement"],
+                               per_subject["normal_displacement"], rtol=1e-6, atol=1e-6)  # float32
 
     # group_test.csv: t of the group effect adjusted for age (sex is constant, dropped),
     # checked against an ordinary least-squares fit (textbook t = b / se(b), e.g.
