@@ -298,9 +298,11 @@ def measure_change(baseline: Surface, followup: Surface, corr=None, *,
     f = baseline.faces
     cross = np.cross(mapped[f[:, 1]] - mapped[f[:, 0]], mapped[f[:, 2]] - mapped[f[:, 0]])
     mapped_area = 0.5 * np.einsum("ij,ij->i", cross, baseline.face_normals)  # signed: flips < 0
-    floor = 1e-3 * baseline.face_areas
-    ratio = np.maximum(mapped_area, floor) / np.maximum(baseline.face_areas, 1e-300)
-    n_flipped = int(np.sum(mapped_area <= floor))
+    area = baseline.face_areas
+    floor = 1e-3 * area  # folded or collapsed mapped faces count as a 1000-fold shrink
+    ratio = np.divide(np.maximum(mapped_area, floor), area, out=np.ones_like(area),
+                      where=area > 0)
+    n_flipped = int(np.sum((mapped_area <= floor) & (area > 0)))
     log_area_ratio = geo.heat_smooth(baseline, geo.face_to_vertex(baseline, np.log(ratio)), sigma)
 
     confidence = conf
