@@ -17,7 +17,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from . import repair
-from .quality import QualityReport, enclosed_centroid, quality_report, row_keys
+from .quality import QualityReport, enclosed_centroid, indexed, quality_report, row_keys
 from .surface import Surface, SurfaceError
 
 __all__ = [
@@ -88,7 +88,7 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
 
     Backward-Euler steps of the mean-curvature flow ``∂x/∂t = Δx = -2 H n`` with
     the cotangent Laplacian (Pinkall & Polthier 1993): ``(M + τ L) x' = M x``,
-    ``τ = scale_mm² / steps``, solved by a sparse Cholesky factorisation (the matrix is
+    ``τ = scale_mm² / steps``, solved by Jacobi-preconditioned conjugate gradients (the matrix is
     symmetric positive definite).  Bumps narrower than about ``scale_mm`` are
     flattened whatever the triangle sizes, which is what a staircase of thick
     slices needs; the surface also shrinks by about ``2 τ H`` along its normal
@@ -106,7 +106,9 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
     -------
     (n, 3) faired vertices, mm
     """
-    from .operators import _factor_solve, cotangent_laplacian
+    from scipy.sparse.linalg import cg
+
+    from .operators import cotangent_laplacian
 
     x = np.array(vertices, dtype=np.float64)
     f = np.asarray(faces)
@@ -114,8 +116,14 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
     for _ in range(max(int(steps), 1)):
         mass = Surface(x.copy(), f).vertex_areas
         A = (sp.diags(mass) + tau * cotangent_laplacian(x, f)).tocsr()
-        solve, _ = _factor_solve(A)  # sparse Cholesky (CHOLMOD) or SuperLU
-        x = solve(mass[:, None] * x)
+        jacobi = sp.diags(1.0 / A.diagonal())
+        rhs = mass[:, None] * x
+        for c in range(3):
+            # warm start from the current positions: a few dozen iterations suffice
+            sol, info = cg(A, rhs[:, c], x0=x[:, c], rtol=1e-8, maxiter=2000, M=jacobi)
+            if info != 0:
+                raise SurfaceError("implicit fairing did not converge (badly shaped triangles)")
+            x[:, c] = sol
     return x
 
 
@@ -146,12 +154,12 @@ def restore_volume(surface: Surface, volume: float) -> tuple[Surface, float]:
     centroid and the shape and restores the enclosed volume exactly.  Returns the
     new surface and the scale factor applied.
     """
-    current = surface.signed_volume
+    current = indexed(surface).signed_volume
     if not surface.is_closed or current <= 0 or volume <= 0:
         return surface, 1.0
     scale = float((volume / current) ** (1.0 / 3.0))
     c = enclosed_centroid(surface)
-    return surface.copy_with(vertices=c + scale * (surface.vertices - c)), scale
+    return indexed(surface.copy_with(vertices=c + scale * (surface.vertices - c))), scale
 
 
 # ---------------------------------------------------------------- resampling
@@ -194,7 +202,7 @@ def resample(surface: Surface, target_vertices: int) -> Surface:
         v, f = fast_simplification.simplify(v, f.astype(np.int32), target_count=target_faces,
                                             agg=7.0)
     v = tangential_relax(v, f, iterations=3)
-    return surface.copy_with(vertices=v, faces=np.asarray(f, dtype=np.int64))
+    return indexed(surface.copy_with(vertices=v, faces=np.asarray(f, dtype=np.int64)))
 
 
 # ---------------------------------------------------------------- the pipeline
@@ -275,7 +283,7 @@ def _repair(v: np.ndarray, f: np.ndarray, *, keep_largest: bool, max_hole_edges:
         actions.append(f"left {left} boundary loop{'s' if left > 1 else ''} open "
                        f"(longer than {max_hole_edges} edges or not simple)")
     v, f, _ = repair.compact(v, f)
-    s = Surface(v, f)
+    s = Surface(v, f)  # only the signed volume is needed
     if s.signed_volume < 0:
         f = f[:, ::-1].copy()
         actions.append("reversed all faces so that normals point outward")
@@ -333,6 +341,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
             surface = Surface(surface.vertices, surface.faces)
         else:
             raise SurfaceError(f"prepare needs a Surface, got {type(surface).__name__}")
+    indexed(surface)
     if target_vertices is not None and (int(target_vertices) != target_vertices
                                         or target_vertices < 4):
         raise ValueError(f"target_vertices must be an integer >= 4, got {target_vertices!r}")
@@ -348,7 +357,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     opts = {"keep_largest": keep_largest, "max_hole_edges": max_hole_edges,
             "merge_tolerance": merge_tolerance}
     v, f, actions = _repair(np.array(surface.vertices), np.array(surface.faces), **opts)
-    s = Surface(v, f, metadata=metadata)
+    s = indexed(Surface(v, f, metadata=metadata))
     reference = s.signed_volume if s.is_closed else None
     report = PrepareReport(before=before, after=before, actions=actions,
                            reference_volume_mm3=reference, parameters=params)
@@ -366,7 +375,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         if fairing_scale_mm > 0:
             faired = implicit_fairing(x, s.faces, fairing_scale_mm)
             x = faired if fixed is None else np.where(fixed[:, None], x, faired)
-        s = s.copy_with(vertices=x)
+        s = indexed(s.copy_with(vertices=x))
         what = (f"Taubin λ|μ, {smoothing_iterations} iterations, then implicit fairing at "
                 f"{fairing_scale_mm:.3g} mm")
         if reference:
@@ -381,7 +390,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         n0 = s.n_vertices
         s = resample(s, int(target_vertices))
         v, f, more = _repair(np.array(s.vertices), np.array(s.faces), **opts)
-        s = Surface(v, f, metadata=metadata)
+        s = indexed(Surface(v, f, metadata=metadata))
         actions.append(f"resampled from {n0} to {s.n_vertices} vertices "
                        "(quadric decimation + tangential relaxation)")
         actions.extend(f"after resampling: {a}" for a in more)

@@ -17,6 +17,7 @@ from .quality import (
     duplicate_faces,
     edge_pairs,
     inconsistent_edges,
+    indexed,
 )
 from .surface import Surface, SurfaceError
 
@@ -138,7 +139,7 @@ def keep_largest_component(v: np.ndarray, f: np.ndarray):
 
     Returns ``(v, f, n_removed_components, n_removed_vertices)``.
     """
-    s = Surface(v, f)
+    s = indexed(Surface(v, f))
     lab = s.vertex_components[f[:, 0]]
     area = np.bincount(lab, weights=s.face_areas)
     present = np.unique(lab)
@@ -200,7 +201,7 @@ def fill_holes(v: np.ndarray, f: np.ndarray, max_hole_edges: int):
     loop opposite to its faces, so a consistently oriented mesh stays consistent.
     Returns ``(v, f, n_filled, n_left)``.
     """
-    loops = Surface(v, f).boundary_loops
+    loops = indexed(Surface(v, f)).boundary_loops
     new_faces, new_verts = [], []
     n_left = 0
     for loop in loops:
