@@ -24,7 +24,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .meshformats import FIELD_NAME, read_ply, write_ply
+from .meshcommon import FIELD_NAME
+from .meshformats import read_ply, write_ply
 from .simpleformats import read_obj, read_off, read_stl, write_obj, write_off, write_stl
 from .surface import Surface, SurfaceError
 from .vtk_legacy import read_vtk, write_vtk

@@ -1,7 +1,7 @@
-"""PLY reading and writing, and helpers shared by the mesh format parsers.
+"""PLY reading and writing (ASCII, binary little- and big-endian).
 
-Parsers take the whole file as ``bytes`` and return ``(vertices (n, 3) float64,
-faces (m, 3) int64, fields dict)``.  Every count read from a header is checked
+The parser takes the whole file as ``bytes`` and returns ``(vertices (n, 3) float64,
+faces (m, 3) int64, fields dict, format name)``.  Every count read from a header is checked
 against the bytes actually present before any array is allocated, so a header
 claiming 10¹² vertices costs nothing.  Problems raise ``SurfaceError`` with a
 one-line message; ``surfacekit.io`` adds the file name.
@@ -17,6 +17,14 @@ import re
 
 import numpy as np
 
+from .meshcommon import (
+    as_integers,
+    column_type,
+    fan_triangulate,
+    field_columns,
+    group_fields,
+    to_numbers,
+)
 from .surface import SurfaceError
 
 # PLY scalar type names (both spellings of the specification) -> numpy dtype code
@@ -26,126 +34,7 @@ PLY_TYPES = {
     "int": "i4", "int32": "i4", "uint": "u4", "uint32": "u4",
     "float": "f4", "float32": "f4", "double": "f8", "float64": "f8",
 }
-FIELD_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.\-]*$")
 _MAX_HEADER = 1 << 20
-
-
-def fan_triangulate(counts: np.ndarray, flat: np.ndarray) -> np.ndarray:
-    """Triangulate polygons given as (m,) vertex counts and their concatenated (sum,) indices.
-
-    A polygon (p0, p1, ..., pk) becomes the fan (p0, p1, p2), (p0, p2, p3), ...
-    (common practice for convex, planar polygons).  Returns (t, 3) int64.
-    """
-    counts = np.asarray(counts, dtype=np.int64)
-    flat = np.asarray(flat, dtype=np.int64)
-    if counts.size == 0:
-        return np.empty((0, 3), dtype=np.int64)
-    if counts.min() < 3:
-        raise SurfaceError(f"polygon with {int(counts.min())} vertices (need at least 3)")
-    if counts.sum() != flat.size:
-        raise SurfaceError("polygon vertex counts do not match the index list")
-    starts = np.cumsum(counts) - counts
-    n_tri = counts - 2
-    owner = np.repeat(np.arange(counts.size), n_tri)
-    k = np.arange(int(n_tri.sum())) - np.repeat(np.cumsum(n_tri) - n_tri, n_tri)
-    s = starts[owner]
-    return np.stack([flat[s], flat[s + k + 1], flat[s + k + 2]], axis=1)
-
-
-def split_cells(data: np.ndarray, n_cells: int) -> tuple[np.ndarray, np.ndarray]:
-    """Split ``[c0, i.., c1, i.., ...]`` into (counts, flat indices) for `n_cells` cells.
-
-    Fast path when every cell has the first cell's size; otherwise a walk that is
-    bounded by ``len(data)`` (each cell consumes at least one value).
-    """
-    data = np.asarray(data, dtype=np.int64)
-    if n_cells == 0:
-        return np.empty(0, np.int64), np.empty(0, np.int64)
-    if data.size == 0:
-        raise SurfaceError(f"{n_cells} cells declared but no cell data")
-    c = int(data[0])
-    if c >= 0 and data.size == n_cells * (c + 1):
-        rows = data.reshape(n_cells, c + 1)
-        if np.all(rows[:, 0] == c):
-            return rows[:, 0].copy(), rows[:, 1:].ravel()
-    counts = np.empty(n_cells, dtype=np.int64)
-    keep = np.zeros(data.size, dtype=bool)
-    pos = 0
-    for i in range(n_cells):  # irregular cells only; bounded by the data size
-        if pos >= data.size:
-            raise SurfaceError(f"cell list ends after {i} of {n_cells} cells")
-        c = int(data[pos])
-        if c < 0 or pos + 1 + c > data.size:
-            raise SurfaceError(f"cell {i} claims {c} vertices beyond the end of the cell list")
-        counts[i] = c
-        keep[pos + 1: pos + 1 + c] = True
-        pos += 1 + c
-    return counts, data[keep]
-
-
-def as_integers(values: np.ndarray, code: str, what: str) -> np.ndarray:
-    """Cast numbers to integer type `code`, refusing non-finite, fractional or out-of-range ones."""
-    values = np.asarray(values)
-    if values.dtype.kind == "f":
-        info = np.iinfo(code)
-        ok = np.isfinite(values) & (values == np.round(values)) & \
-            (values >= info.min) & (values <= info.max)
-        if not ok.all():
-            raise SurfaceError(f"{what} holds a value that is not a {code} integer")
-    return values.astype(code)
-
-
-def to_numbers(tokens: list, dtype, what: str) -> np.ndarray:
-    """Convert ASCII tokens to numbers; a bad token raises SurfaceError naming `what`."""
-    try:
-        return np.array(tokens, dtype=dtype)
-    except (ValueError, OverflowError) as exc:
-        raise SurfaceError(f"bad number in {what}: {str(exc)[:80]}") from None
-
-
-def group_fields(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """Group ``name_x/_y/_z`` columns into (n, 3) and ``name_0.._k`` into (n, k+1)."""
-    out: dict[str, np.ndarray] = {}
-    used: set[str] = set()
-    for col, values in columns.items():
-        if col in used:
-            continue
-        base, _, tail = col.rpartition("_")
-        if base and tail == "x" and all(f"{base}_{a}" in columns for a in "yz"):
-            names = [f"{base}_{a}" for a in "xyz"]
-        elif base and tail == "0":
-            names = []
-            while f"{base}_{len(names)}" in columns:
-                names.append(f"{base}_{len(names)}")
-        else:
-            names = []
-        if len(names) >= 2 and base not in columns and base not in out:
-            out[base] = np.stack([columns[c] for c in names], axis=1)
-            used.update(names)
-        else:
-            out[col] = values
-    return out
-
-
-def field_columns(fields: dict, n: int) -> list[tuple[str, np.ndarray]]:
-    """Flatten validated per-vertex fields into named 1-D columns (inverse of `group_fields`)."""
-    cols = []
-    for name, arr in fields.items():
-        a = np.asarray(arr)
-        if a.ndim == 1 or a.shape[1] == 1:  # (n, 1) is stored, and read back, as (n,)
-            cols.append((name, a.reshape(-1)))
-        elif a.shape[1] == 3:
-            cols.extend((f"{name}_{ax}", a[:, i]) for i, ax in enumerate("xyz"))
-        else:
-            cols.extend((f"{name}_{i}", a[:, i]) for i in range(a.shape[1]))
-    return cols
-
-
-def column_type(a: np.ndarray) -> str:
-    """PLY type for a field column: ``int`` (int32) for integer and boolean data, else ``float``."""
-    if a.dtype.kind == "b" or a.dtype.kind in "iu":
-        return "int"
-    return "float"
 
 
 # ---------------------------------------------------------------------------- PLY reading
@@ -159,9 +48,14 @@ def _parse_ply_header(data: bytes):
         lines = data[: m.start()].decode("ascii").splitlines()[1:]
     except UnicodeDecodeError:
         raise SurfaceError("PLY header is not ASCII text") from None
-    fmt, elements = None, []
+    fmt, elements, declared = None, [], None
     for line in lines:
         t = line.split()
+        if t[:3] == ["comment", "written", "by"] and t[3:4] == ["surfacekit"]:
+            declared = {} if declared is None else declared
+        if t[:1] == ["comment"] and t[1:2] == ["surfacekit-field"] and len(t) == 4 and t[3].isdigit():
+            declared = {} if declared is None else declared
+            declared[t[2]] = int(t[3])
         if not t or t[0] in ("comment", "obj_info"):
             continue
         if t[0] == "format" and len(t) >= 2:
@@ -183,7 +77,7 @@ def _parse_ply_header(data: bytes):
             raise SurfaceError(f"bad PLY header line: {line.strip()[:60]!r}")
     if fmt not in ("ascii", "binary_little_endian", "binary_big_endian"):
         raise SurfaceError(f"unknown PLY format {fmt!r}")
-    return fmt, elements, m.end()
+    return fmt, elements, m.end(), declared
 
 
 def _empty_element(props):
@@ -334,7 +228,7 @@ def _binary_element(data, pos, name, count, props, endian):
 
 def read_ply(data: bytes):
     """Parse PLY (ASCII or binary) bytes -> (vertices, faces, fields, format name)."""
-    fmt, elements, start = _parse_ply_header(data)
+    fmt, elements, start, declared = _parse_ply_header(data)
     names = [e[0] for e in elements]
     if "vertex" not in names:
         raise SurfaceError("PLY file has no vertex element")
@@ -372,7 +266,7 @@ def read_ply(data: bytes):
     if missing:
         raise SurfaceError(f"PLY vertex element lacks coordinate(s) {', '.join(missing)}")
     vertices = np.stack([vertex_cols.pop(a).astype(np.float64) for a in "xyz"], axis=1)
-    return vertices, faces, group_fields(vertex_cols), f"ply-{fmt}"
+    return vertices, faces, group_fields(vertex_cols, declared), f"ply-{fmt}"
 
 
 # ---------------------------------------------------------------------------- PLY writing
@@ -386,7 +280,10 @@ def write_ply(fh, vertices: np.ndarray, faces: np.ndarray, fields: dict, *, bina
     cols = field_columns(fields, n)
     kinds = [column_type(a) for _, a in cols]
     header = ["ply", f"format {'binary_little_endian' if binary else 'ascii'} 1.0",
-              "comment written by surfacekit", f"element vertex {n}",
+              "comment written by surfacekit"]
+    header += [f"comment surfacekit-field {name} {np.shape(a)[1]}" for name, a in fields.items()
+               if np.ndim(a) == 2 and np.shape(a)[1] > 1]
+    header += [f"element vertex {n}",
               "property double x", "property double y", "property double z"]
     header += [f"property {k} {name}" for (name, _), k in zip(cols, kinds)]
     header += [f"element face {m}", "property list uchar int vertex_indices", "end_header", ""]

@@ -16,7 +16,7 @@ import re
 
 import numpy as np
 
-from .meshformats import as_integers, fan_triangulate, to_numbers
+from .meshcommon import as_integers, fan_triangulate, to_numbers
 from .surface import SurfaceError
 
 

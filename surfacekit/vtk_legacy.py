@@ -17,7 +17,7 @@ import re
 
 import numpy as np
 
-from .meshformats import FIELD_NAME, fan_triangulate, split_cells, to_numbers
+from .meshcommon import FIELD_NAME, fan_triangulate, split_cells, to_numbers
 from .surface import SurfaceError
 
 # VTK type name -> numpy type code (big-endian applied in binary files).  "long" is

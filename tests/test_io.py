@@ -215,6 +215,29 @@ def test_ply_specification_examples(tmp_path, data):
         np.testing.assert_array_equal(got["red"], [255] * 4 + [0] * 4)
 
 
+@pytest.mark.parametrize("binary", [True, False])
+def test_ply_component_names_round_trip_exactly(tmp_path, sphere, binary):
+    """Scalar fields named like components stay scalars; declared vectors come back (n, 3)."""
+    n = sphere.n_vertices
+    fields = {"shift_x": np.zeros(n), "shift_y": np.ones(n), "shift_z": np.full(n, 2.0),
+              "flow": np.ones((n, 3)), "basis": np.ones((n, 2))}
+    sk.save(sphere, tmp_path / "names.ply", fields=fields, binary=binary)
+    got = load_with_fields(tmp_path / "names.ply")[1]
+    assert {k: v.shape for k, v in got.items()} == {k: v.shape for k, v in fields.items()}
+
+
+def test_foreign_ply_component_triplets_are_grouped(tmp_path):
+    """Files from other writers: name_x/_y/_z properties become one (n, 3) field."""
+    head = (b"ply\nformat ascii 1.0\nelement vertex 3\nproperty float x\nproperty float y\n"
+            b"property float z\nproperty float flow_x\nproperty float flow_y\n"
+            b"property float flow_z\nelement face 1\nproperty list uchar int vertex_indices\n"
+            b"end_header\n")
+    path = tmp_path / "foreign.ply"
+    path.write_bytes(head + b"0 0 0 1 2 3\n1 0 0 1 2 3\n0 1 0 1 2 3\n3 0 1 2\n")
+    got = load_with_fields(path)[1]
+    np.testing.assert_array_equal(got["flow"], [[1, 2, 3]] * 3)
+
+
 def test_big_endian_binary_ply(tmp_path):
     """Binary big-endian PLY with a uint count and float coordinates (layout per Turk 1994)."""
     head = (b"ply\nformat binary_big_endian 1.0\nelement vertex 4\nproperty float x\n"
