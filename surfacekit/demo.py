@@ -94,7 +94,7 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
     import surfacekit as sk
 
     from . import report_figures as rfig
-    from .cli_util import surface_facts, without_timings, write_rows_csv
+    from .cli_util import input_record, surface_facts, without_timings, write_rows_csv
     from .prepare import prepare as prepare_surface  # module name shadows sk.prepare
     from .report_views import change_figures, change_panel, correspondence_panel
 
@@ -203,7 +203,8 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
     tables["Cohort subjects"] = [{k: r.get(k) for k in ("subject", "status", "error")}
                                  for r in cohort.rows]
     provenance = {
-        "inputs": [{"file": str(Path(v).relative_to(out)), "role": k} for k, v in p.items()],
+        "inputs": [{"role": k, **input_record(Path(v)), "path": str(Path(v).relative_to(out))}
+                   for k, v in p.items()],
         "options": {"size": size, "seed": seed, "workers": n_workers,
                     "cohort target vertices": sizes.cohort, "permutations": 2000},
         "timings (s)": timings,
