@@ -125,14 +125,15 @@ def _layer_style(layer: ReportLayer) -> dict:
         data = np.zeros(1)
     style: dict[str, Any] = {"tickvals": None, "ticktext": None}
     if layer.kind == "labels":
-        top = int(max(data.max(), 1))
-        colours = [LABEL_COLOURS[i % len(LABEL_COLOURS)] for i in range(top + 1)]
+        lo, hi = int(data.min()), int(max(data.max(), data.min() + 1))
+        span = hi - lo + 1
         scale = []
-        for i, c in enumerate(colours):  # stepped scale: one flat band per label
-            scale += [[i / (top + 1), c], [(i + 1) / (top + 1), c]]
-        style.update(colorscale=scale, cmin=-0.5, cmax=top + 0.5,
-                     tickvals=list(range(top + 1)),
-                     ticktext=[(layer.label_names or {}).get(i, str(i)) for i in range(top + 1)])
+        for i in range(span):  # stepped scale: one flat band per label value
+            c = LABEL_COLOURS[(lo + i) % len(LABEL_COLOURS)]
+            scale += [[i / span, c], [(i + 1) / span, c]]
+        present = sorted({int(v) for v in np.unique(data)})
+        style.update(colorscale=scale, cmin=lo - 0.5, cmax=hi + 0.5, tickvals=present,
+                     ticktext=[(layer.label_names or {}).get(i, str(i)) for i in present])
     elif layer.kind == "diverging":
         # symmetric limits put zero exactly at the middle (white) of the scale
         m = float(np.percentile(np.abs(data), 99)) if layer.limits is None else max(map(abs, layer.limits))
@@ -145,6 +146,12 @@ def _layer_style(layer: ReportLayer) -> dict:
             hi = lo + 1.0
         style.update(colorscale=CYCLIC if layer.kind == "cyclic" else SEQUENTIAL, cmin=lo, cmax=hi)
     return style
+
+
+def _face_labels(faces: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    """Label of each triangle: the label shared by at least two of its corners, else the first."""
+    a, b, c = labels[faces[:, 0]], labels[faces[:, 1]], labels[faces[:, 2]]
+    return np.where((b == c) & (a != b), b, a)
 
 
 def _panel_spec(panel: ReportPanel, div_id: str) -> dict:
@@ -168,8 +175,8 @@ def _panel_spec(panel: ReportPanel, div_id: str) -> dict:
                              f"{len(surfaces)} surfaces")
         style = _layer_style(layer)
         title = f"{layer.name} ({layer.unit})" if layer.unit else layer.name
-        upd: dict[str, list] = {k: [] for k in ("intensity", "colorscale", "cmin", "cmax",
-                                                "showscale", "colorbar.title.text",
+        upd: dict[str, list] = {k: [] for k in ("intensity", "intensitymode", "colorscale",
+                                                "cmin", "cmax", "showscale", "colorbar.title.text",
                                                 "colorbar.tickvals", "colorbar.ticktext")}
         last_defined = max((i for i, v in enumerate(layer.values) if v is not None), default=-1)
         for i, ((name, s), values) in enumerate(zip(surfaces, layer.values)):
@@ -181,7 +188,13 @@ def _panel_spec(panel: ReportPanel, div_id: str) -> dict:
                     raise ValueError(f"layer {layer.name!r} has {vals.shape[0]} values for "
                                      f"surface {name!r} with {s.n_vertices} vertices")
                 scale, lo, hi = style["colorscale"], style["cmin"], style["cmax"]
+            mode = "vertex"
+            if layer.kind == "labels" and values is not None:
+                # one flat colour per triangle: interpolating labels across a face would
+                # paint the colours of unrelated labels along region borders
+                vals, mode = _face_labels(s.faces, vals), "cell"
             upd["intensity"].append(_rounded(vals))
+            upd["intensitymode"].append(mode)
             upd["colorscale"].append(scale)
             upd["cmin"].append(lo)
             upd["cmax"].append(hi)
@@ -198,7 +211,7 @@ def _panel_spec(panel: ReportPanel, div_id: str) -> dict:
             "type": "mesh3d", "name": esc(name), "x": _rounded(v[:, 0], 6),
             "y": _rounded(v[:, 1], 6), "z": _rounded(v[:, 2], 6),
             "i": s.faces[:, 0].tolist(), "j": s.faces[:, 1].tolist(), "k": s.faces[:, 2].tolist(),
-            "intensity": first["intensity"][i], "intensitymode": "vertex",
+            "intensity": first["intensity"][i], "intensitymode": first["intensitymode"][i],
             "colorscale": first["colorscale"][i], "cmin": first["cmin"][i],
             "cmax": first["cmax"][i], "showscale": first["showscale"][i],
             "colorbar": {"title": {"text": first["colorbar.title.text"][i]},

@@ -109,7 +109,8 @@ def change_panel(baseline_name: str, baseline: Surface, followup_name: str, foll
                     description="Length of the displacement after rigid alignment."),
     ]
     if labels is not None:
-        layers.append(ReportLayer("regions", [np.asarray(labels), None], kind="labels",
+        carried = np.asarray(corr.transfer(np.asarray(labels), labels=True))
+        layers.append(ReportLayer("regions", [np.asarray(labels), carried], kind="labels",
                                   label_names=label_names,
                                   description="Regions transferred from the labelled template."))
     layers += correspondence_layers(baseline, followup, corr)

@@ -69,7 +69,11 @@ def test_diverging_scale_is_centred_on_zero_and_layers_switch(tmp_path, kidney):
     assert change["colorscale"][1] == report.NEUTRAL  # field not defined on the second surface
     assert spec["layers"][1]["update"]["cmin"] == [0.0, 0.0]
     regions = spec["layers"][2]["update"]
-    assert regions["colorbar.ticktext"][0] == ["0", "left", "right"]
+    assert regions["colorbar.ticktext"][0] == ["left", "right"]
+    assert regions["intensitymode"] == ["cell", "cell"]  # flat colour per triangle
+    assert len(regions["intensity"][0]) == kidney.n_faces
+    assert set(regions["intensity"][0]) == {1, 2}
+    assert regions["cmin"][0] == 0.5 and regions["cmax"][0] == 2.5
     assert len(spec["figure"]["data"][0]["intensity"]) == kidney.n_vertices
     assert "sk-panel-0-select" in html and html.count("<option") == 3
 
