@@ -99,7 +99,7 @@ def main() -> None:
     def baseline():
         from skimage.measure import marching_cubes
 
-        v, f, _, _ = marching_cubes(vol == LIVER, level=0.5, spacing=tuple(SPACING))
+        v, _, _, _ = marching_cubes(vol == LIVER, level=0.5, spacing=tuple(SPACING))
         return len(v)
 
     rows = []

@@ -17,7 +17,8 @@ import numpy as np
 import scipy.sparse as sp
 
 from . import repair
-from .quality import QualityReport, enclosed_centroid, indexed, quality_report, row_keys
+from .quality import QualityReport, enclosed_centroid, indexed, quality_report
+from .repair import _umbrella, improve_triangles, resample
 from .surface import Surface, SurfaceError
 
 __all__ = [
@@ -34,17 +35,6 @@ log = logging.getLogger("surfacekit")
 
 
 # ---------------------------------------------------------------- smoothing
-def _umbrella(f: np.ndarray, n: int) -> sp.csr_matrix:
-    """Row-normalised vertex adjacency W (n, n): ``(W x)_i`` = mean of i's neighbours."""
-    e = np.concatenate([f[:, [0, 1]], f[:, [1, 2]], f[:, [2, 0]]])
-    e = np.sort(e, axis=1)
-    e = e[np.unique(row_keys(e), return_index=True)[1]]
-    a = sp.coo_matrix((np.ones(2 * len(e)), (np.r_[e[:, 0], e[:, 1]], np.r_[e[:, 1], e[:, 0]])),
-                      shape=(n, n)).tocsr()
-    deg = np.asarray(a.sum(axis=1)).ravel()
-    return sp.diags(1.0 / np.maximum(deg, 1)) @ a
-
-
 def taubin_smooth(vertices: np.ndarray, faces: np.ndarray, iterations: int = 30, *,
                   lam: float = 0.5, mu: float = -0.53, fixed: np.ndarray | None = None) -> np.ndarray:
     """Taubin λ|μ smoothing (Taubin, "A signal processing approach to fair surface design", SIGGRAPH 1995).
@@ -127,26 +117,6 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
     return x
 
 
-def tangential_relax(vertices: np.ndarray, faces: np.ndarray, iterations: int = 3,
-                     step: float = 0.5) -> np.ndarray:
-    """Move vertices toward their neighbours' mean within the tangent plane only.
-
-    The tangential relaxation step of isotropic remeshing (Botsch & Kobbelt,
-    "A remeshing approach to multiresolution modeling", SGP 2004): triangle shapes
-    become more regular while the surface barely moves along its normal.
-    Returns (n, 3) vertices, mm.
-    """
-    x = np.array(vertices, dtype=np.float64)
-    f = np.asarray(faces)
-    W = _umbrella(f, len(x))
-    for _ in range(int(iterations)):
-        n = Surface(x.copy(), f).vertex_normals  # Surface freezes its arrays
-        d = W @ x - x
-        d -= np.einsum("ij,ij->i", d, n)[:, None] * n
-        x += step * d
-    return x
-
-
 def restore_volume(surface: Surface, volume: float) -> tuple[Surface, float]:
     """Scale a closed surface uniformly about its enclosed centroid to a given volume (mm³).
 
@@ -160,49 +130,6 @@ def restore_volume(surface: Surface, volume: float) -> tuple[Surface, float]:
     scale = float((volume / current) ** (1.0 / 3.0))
     c = enclosed_centroid(surface)
     return indexed(surface.copy_with(vertices=c + scale * (surface.vertices - c))), scale
-
-
-# ---------------------------------------------------------------- resampling
-def _midpoint_subdivide(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Split every triangle into four at its edge midpoints (the shape is unchanged)."""
-    he = np.sort(np.concatenate([f[:, [0, 1]], f[:, [1, 2]], f[:, [2, 0]]]), axis=1)
-    _, first, inv = np.unique(row_keys(he), return_index=True, return_inverse=True)
-    mid = len(v) + inv.reshape(3, -1).T  # (m, 3) midpoint of edges 01, 12, 20
-    v = np.vstack([v, 0.5 * (v[he[first, 0]] + v[he[first, 1]])])
-    a, b, c = f[:, 0], f[:, 1], f[:, 2]
-    ab, bc, ca = mid[:, 0], mid[:, 1], mid[:, 2]
-    f = np.concatenate([np.stack(t, axis=1) for t in
-                        ((a, ab, ca), (ab, b, bc), (ca, bc, c), (ab, bc, ca))])
-    return v, f
-
-def resample(surface: Surface, target_vertices: int) -> Surface:
-    """Resample to about ``target_vertices`` vertices with well-shaped triangles.
-
-    Quadric-error edge-collapse decimation (Garland & Heckbert, SIGGRAPH 1997,
-    through the fast-simplification package) to the face count that corresponds
-    to the target; a surface with fewer vertices than the target is first split
-    by midpoint subdivision (each triangle into four, shape unchanged).  Three
-    steps of tangential relaxation (Botsch & Kobbelt 2004) then even out the
-    triangles.
-    """
-    import fast_simplification
-
-    target = int(target_vertices)
-    if target < 4:
-        raise ValueError(f"target_vertices must be at least 4, got {target_vertices!r}")
-    # writable, contiguous copies: the compiled decimator rejects read-only arrays
-    v, f = np.array(surface.vertices, dtype=np.float64), np.array(surface.faces, dtype=np.int64)
-    for _ in range(6):  # each split multiplies the count by about 4
-        if len(v) >= target:
-            break
-        v, f = _midpoint_subdivide(v, f)
-    faces_per_vertex = len(f) / len(v)
-    target_faces = round(target * faces_per_vertex)
-    if target_faces < len(f):
-        v, f = fast_simplification.simplify(v, f.astype(np.int32), target_count=target_faces,
-                                            agg=7.0)
-    v = tangential_relax(v, f, iterations=3)
-    return indexed(surface.copy_with(vertices=v, faces=np.asarray(f, dtype=np.int64)))
 
 
 # ---------------------------------------------------------------- the pipeline
@@ -375,9 +302,16 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         if fairing_scale_mm > 0:
             faired = implicit_fairing(x, s.faces, fairing_scale_mm)
             x = faired if fixed is None else np.where(fixed[:, None], x, faired)
-        s = indexed(s.copy_with(vertices=x))
+        improve = target_vertices is None and fixed is None  # resampling improves anyway
+        if improve:
+            x, f_new = improve_triangles(x, s.faces)
+            s = indexed(s.copy_with(vertices=x, faces=f_new))
+        else:
+            s = indexed(s.copy_with(vertices=x))
         what = (f"Taubin λ|μ, {smoothing_iterations} iterations, then implicit fairing at "
                 f"{fairing_scale_mm:.3g} mm")
+        if improve:
+            what += "; triangles evened out by edge flips and tangential relaxation"
         if reference:
             report.smoothing_volume_change = s.signed_volume / v0 - 1.0
             actions.append(f"smoothed staircase artefacts ({what}; volume change "
@@ -392,7 +326,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         v, f, more = _repair(np.array(s.vertices), np.array(s.faces), **opts)
         s = indexed(Surface(v, f, metadata=metadata))
         actions.append(f"resampled from {n0} to {s.n_vertices} vertices "
-                       "(quadric decimation + tangential relaxation)")
+                       "(quadric decimation, edge flips, tangential relaxation)")
         actions.extend(f"after resampling: {a}" for a in more)
 
     if preserve_volume and reference and s.is_closed:

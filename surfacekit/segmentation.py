@@ -30,7 +30,8 @@ def _load_volume(source: Any, affine: Any, spacing: Any) -> tuple[Any, np.ndarra
         if not path.is_file():
             raise SurfaceError(f"no such label volume: {path}")
         try:
-            img = nib.funcs.squeeze_image(nib.load(str(path)))
+            # an open handle lets gzip read the slabs in one forward pass, not one per slab
+            img = nib.funcs.squeeze_image(nib.load(str(path), keep_file_open=True))
         except Exception as exc:  # noqa: BLE001 - nibabel raises many types on bad files
             raise SurfaceError(f"cannot read {path.name} as NIfTI: {exc}") from None
         data = img.dataobj  # a proxy: slabs are read on demand

@@ -215,7 +215,7 @@ def test_taubin_does_not_shrink_like_laplacian_smoothing():
     v0 = sk.Surface(noisy, s.faces).volume
     taubin = sk.Surface(taubin_smooth(noisy, s.faces, 30), s.faces).volume
     # plain Laplacian smoothing with the same 60 steps of 0.5
-    w = taubin_smooth.__globals__["_umbrella"](np.asarray(s.faces), s.n_vertices)
+    w = repair._umbrella(np.asarray(s.faces), s.n_vertices)
     x = noisy.copy()
     for _ in range(60):
         x = x + 0.5 * (w @ x - x)
@@ -282,3 +282,34 @@ def test_prepare_is_callable_however_the_module_was_imported():
 
     out, _ = sk.prepare(_sphere(1))
     assert out.n_vertices == 42
+
+
+def test_edge_flips_reach_the_delaunay_triangulation_in_the_plane():
+    """Lawson's flip algorithm ends at the Delaunay triangulation of planar points; the
+    reference is Qhull's (scipy.spatial.Delaunay).  Start: Delaunay of the points
+    stretched 4x in x, a valid but non-Delaunay triangulation of the same points."""
+    from scipy.spatial import Delaunay
+
+    rng = np.random.default_rng(5)
+    p = rng.uniform(0, 10, size=(300, 2))
+    v = np.column_stack([p, np.zeros(len(p))])
+
+    def upward(tri):
+        t = tri.copy()
+        n = np.cross(v[t[:, 1]] - v[t[:, 0]], v[t[:, 2]] - v[t[:, 0]])[:, 2]
+        t[n < 0] = t[n < 0][:, ::-1]
+        return t
+
+    start = upward(Delaunay(p * [4.0, 1.0]).simplices)
+    flipped, n = repair.delaunay_flips(v, start, rounds=500)
+    expected = upward(Delaunay(p).simplices)
+
+    def edge_set(t):
+        e = np.sort(np.concatenate([t[:, [0, 1]], t[:, [1, 2]], t[:, [2, 0]]]), axis=1)
+        return set(map(tuple, np.unique(e, axis=0)))
+
+    assert n > 0 and edge_set(start) != edge_set(expected)
+    assert edge_set(flipped) == edge_set(expected)
+    # orientation kept: every triangle still faces +z
+    normals = np.cross(v[flipped[:, 1]] - v[flipped[:, 0]], v[flipped[:, 2]] - v[flipped[:, 0]])
+    assert np.all(normals[:, 2] > 0)
