@@ -55,7 +55,8 @@ class CohortResult:
     n_computed, n_cached, n_failed : subjects computed in this run, reused from an
         earlier run, and failed (failed subjects are retried by the next run)
     wall_seconds : time of the whole run (s)
-    stage_seconds : time per stage summed over the subjects computed in this run (s)
+    stage_seconds : time per stage summed over the subjects computed in this run (s);
+        ``"cpu"`` is their CPU time (s), the time on idle cores when the machine is shared
     peak_rss_mb : peak resident memory per worker process (MiB), keyed ``host:pid``
     tables : paths of the cohort tables written
     """
@@ -92,7 +93,8 @@ class CohortResult:
         if self.n_computed:
             per = ", ".join(f"{s} {self.stage_seconds.get(s, 0.0) / self.n_computed:.2f}"
                             for s in STAGES)
-            lines.append(f"mean time per computed subject (s): {per}")
+            cpu = self.stage_seconds.get("cpu", 0.0) / self.n_computed
+            lines.append(f"mean time per computed subject (s): {per}; CPU {cpu:.2f}")
         if self.peak_rss_mb:
             lines.append(f"peak memory per worker: {max(self.peak_rss_mb.values()):.0f} MiB "
                          f"(max over {len(self.peak_rss_mb)} worker processes)")
@@ -210,7 +212,7 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
                                      template_file=str(tfile), template_key=tkey,
                                      options=options))
 
-    stage_seconds = {s: 0.0 for s in STAGES}
+    stage_seconds = {s: 0.0 for s in (*STAGES, "cpu")}
     peak: dict[str, float] = {}
     bar = None
     if progress:
@@ -223,7 +225,7 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         for row in run_tasks(tasks, workers=int(workers), scheduler=scheduler,
                              max_tasks_per_worker=max_tasks_per_worker):
             rows[row["index"]] = row
-            for s in STAGES:
+            for s in (*STAGES, "cpu"):
                 stage_seconds[s] += float(row.get("timings", {}).get(s, 0.0))
             w = row.get("worker") or {}
             if w:

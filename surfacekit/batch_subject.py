@@ -228,7 +228,7 @@ def run_subject(task: SubjectTask) -> dict:
     out = Path(task.subject_dir)
     timings = {s: 0.0 for s in STAGES}
     row = {"index": task.index, "subject": task.subject, "key": task.key, "cached": False}
-    start = time.perf_counter()
+    start, cpu_start = time.perf_counter(), time.process_time()
     try:
         out.mkdir(parents=True, exist_ok=True)
         for stale in out.glob(f"*{MARKER_SUFFIX}"):
@@ -249,6 +249,8 @@ def run_subject(task: SubjectTask) -> dict:
             pass
     gc.collect()
     timings["total"] = time.perf_counter() - start
+    # CPU time of this process: with one BLAS thread, the time on an idle core
+    timings["cpu"] = time.process_time() - cpu_start
     row["timings"] = timings
     row["worker"] = worker_info()
     try:  # informative only (never compared): time per stage and the worker's peak memory
