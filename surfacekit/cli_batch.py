@@ -58,7 +58,7 @@ def _cohort(ctx: Context) -> dict:
                            seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty())
     if result.n_failed == result.n_subjects:
         raise InputError(f"every subject failed; first: {result.failed[0][0]}: {result.failed[0][1]}")
-    ctx.say(result.summary())
+    ctx.say(result.summary().replace(str(out), str(a.output)))  # staged -> final folder name
     return {"manifest": manifest.name, "output": str(a.output), "subjects": result.n_subjects,
             "failed": result.n_failed, "tables": {k: Path(v).name for k, v in result.tables.items()}}
 
