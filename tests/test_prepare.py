@@ -313,3 +313,17 @@ def test_edge_flips_reach_the_delaunay_triangulation_in_the_plane():
     # orientation kept: every triangle still faces +z
     normals = np.cross(v[flipped[:, 1]] - v[flipped[:, 0]], v[flipped[:, 2]] - v[flipped[:, 0]])
     assert np.all(normals[:, 2] > 0)
+
+
+def test_smoothing_can_be_forced_on_and_off():
+    s = sphere_mask_surface(10.0)
+    off, report = sk.prepare(s, smooth=False)
+    assert report.parameters["smooth"] is False and report.smoothing_volume_change is None
+    np.testing.assert_array_equal(off.vertices, s.vertices)  # already clean: untouched
+    noisy_sphere = _sphere(3)
+    rng = np.random.default_rng(2)
+    noisy = noisy_sphere.vertices * (1 + 0.02 * rng.standard_normal((noisy_sphere.n_vertices, 1)))
+    on, report = sk.prepare(sk.Surface(noisy, noisy_sphere.faces), smooth=True)
+    spread = [np.linalg.norm(x.vertices, axis=1).std() for x in (sk.Surface(noisy, noisy_sphere.faces), on)]
+    assert spread[1] < 0.3 * spread[0]
+    assert abs(report.volume_change) < 1e-9
