@@ -19,6 +19,7 @@ For research use only; not for diagnosis or treatment decisions.
 """
 from __future__ import annotations
 
+import logging
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -40,6 +41,8 @@ from .batch_subject import (
     write_json,
 )
 from .batch_tables import write_fields_matrix, write_group_test, write_summary
+
+logger = logging.getLogger(__name__)
 
 __all__ = ["CohortResult", "read_manifest", "run_cohort"]
 
@@ -244,8 +247,12 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     tables["fields"] = write_fields_matrix(out / "cohort_fields.npz", man, rows, subject_dirs,
                                            n_template, options["n_eigenvalues"])
     group_file = out / "group_test.csv"
-    written = write_group_test(group_file, man, rows, tables["fields"],
-                               n_permutations=int(n_permutations), seed=int(seed))
+    try:
+        written = write_group_test(group_file, man, rows, tables["fields"],
+                                   n_permutations=int(n_permutations), seed=int(seed))
+    except ValueError as exc:  # e.g. fields identical across subjects: keep the other tables
+        logger.warning("cohort: no group test: %s", exc)
+        written = None
     if written is not None:
         tables["group_test"] = written
     elif group_file.exists():  # a stale test from an earlier run would mislead
