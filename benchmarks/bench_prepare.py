@@ -11,8 +11,8 @@ memory) and two smaller organs.  Printed side by side, measured in the same run:
 * the same from a ``.nii.gz`` file (``--nifti``).
 
 Peak memory is the peak of Python/NumPy allocations during each step
-(``tracemalloc``; the input volume, allocated before, is not counted; memory
-allocated inside compiled decimation code is not traced).  Timings on a shared
+(``tracemalloc``, in a second, untimed run; the input volume, allocated before,
+is not counted; memory allocated inside compiled decimation code is not traced).  Timings on a shared
 machine are inflated by other jobs; the ratios are the point.
 
 Run:  python benchmarks/bench_prepare.py [--nifti] [--target 20000]
@@ -72,10 +72,13 @@ def make_volume() -> np.ndarray:
 
 
 def measure(fn):
-    tracemalloc.start()
+    """(result, seconds, peak MiB): timed untraced, then run again under tracemalloc
+    (tracing slows allocation-heavy code, so it must not be in the timing)."""
     t = time.perf_counter()
     out = fn()
     seconds = time.perf_counter() - t
+    tracemalloc.start()
+    fn()
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     return out, seconds, peak / 2**20
