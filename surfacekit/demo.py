@@ -74,14 +74,16 @@ def _cohort_panel(result_dir: Path, raw_template, raw_labels):
 
     labels = raw_labels[cKDTree(raw_template.vertices).query(template.vertices)[1]]
     diff = cols[means[1]] - cols[means[0]] if len(means) == 2 else None
+    groups = tuple(m[len("mean_"):-len("_mm")] for m in means) if len(means) == 2 else ("A", "B")
     panel = group_test_panel("cohort template", template, _Result, diff, labels,
-                             demo_data.REGION_NAMES)
+                             demo_data.REGION_NAMES, groups=groups)
+    t_shown = -cols["t"]  # second group minus first, as in the panel
     table = []
     for lab, name in demo_data.REGION_NAMES.items():
         m = labels == lab
         table.append({"region": name, "vertices": int(m.sum()),
                       "mean difference (mm)": float(diff[m].mean()) if diff is not None else None,
-                      "max t": float(cols["t"][m].max()),
+                      f"max t ({groups[1]} − {groups[0]})": float(t_shown[m].max()),
                       "min p (FWER)": float(cols["p_fwer"][m].min()) if "p_fwer" in cols else None,
                       "vertices with p_FWER < 0.05": int((cols["p_fwer"][m] < 0.05).sum())
                       if "p_fwer" in cols else None})

@@ -151,14 +151,24 @@ def change_figures(baseline: Surface, change, regional: list[dict] | None = None
 
 
 def group_test_panel(template_name: str, template: Surface, result, mean_difference=None,
-                     labels=None, label_names=None) -> ReportPanel:
-    """Vertex-wise group statistics on the template: t, corrected p-values, mean difference."""
-    layers = [ReportLayer("t statistic", [np.asarray(result.t, dtype=float)], kind="diverging",
-                          description="Vertex-wise two-sample t statistic (second group minus first).")]
+                     labels=None, label_names=None, groups: tuple[str, str] = ("A", "B")
+                     ) -> ReportPanel:
+    """Vertex-wise group statistics on the template: t, corrected p-values, mean difference.
+
+    ``result`` follows :func:`surfacekit.vertexwise_group_test` (t > 0 where the first
+    group is larger); the panel shows ``groups[1] - groups[0]``, so the second group's
+    growth is red.  ``mean_difference`` must already be ``mean(groups[1]) - mean(groups[0])``.
+    """
+    contrast = f"{groups[1]} − {groups[0]}"
+    layers = [ReportLayer(f"t statistic ({contrast})", [-np.asarray(result.t, dtype=float)],
+                          kind="diverging",
+                          description=f"Vertex-wise two-sample t statistic of {contrast}: red "
+                                      f"where {groups[1]} lies further outward.")]
     if mean_difference is not None:
-        layers.append(ReportLayer("mean difference", [np.asarray(mean_difference, dtype=float)],
-                                  kind="diverging", unit="mm",
-                                  description="Difference of group means."))
+        layers.append(ReportLayer(f"mean difference ({contrast})",
+                                  [np.asarray(mean_difference, dtype=float)], kind="diverging",
+                                  unit="mm", description="Difference of the group means of the "
+                                                         "normal displacement."))
     for attr, title in (("p_fwer", "-log10 p (FWER, max-T permutation)"),
                         ("q_fdr", "-log10 q (FDR, Benjamini-Hochberg)")):
         value = getattr(result, attr, None)
