@@ -205,7 +205,8 @@ def _repair(v: np.ndarray, f: np.ndarray, *, keep_largest: bool, max_hole_edges:
         actions.append(f"flipped {n} faces to make the orientation consistent")
     v, f, n, left = repair.fill_holes(v, f, max_hole_edges)
     if n:
-        actions.append(f"filled {n} hole{'s' if n > 1 else ''} (up to {max_hole_edges} edges)")
+        actions.append(f"filled {n} hole{'s' if n > 1 else ''} (up to {max_hole_edges} edges; "
+                       "patches follow the surrounding curvature)")
     if left:
         actions.append(f"left {left} boundary loop{'s' if left > 1 else ''} open "
                        f"(longer than {max_hole_edges} edges or not simple)")
@@ -227,7 +228,8 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     coincident vertices; drop degenerate and duplicated faces; cut faces off
     non-manifold edges and split pinched vertices; keep the largest component;
     orient faces consistently (then outward); fill holes up to
-    ``max_hole_edges``; smoothing: Taubin λ|μ (:func:`taubin_smooth`) against the
+    ``max_hole_edges`` with ring patches placed by a biharmonic fill
+    (:func:`surfacekit.repair.fill_holes`); smoothing: Taubin λ|μ (:func:`taubin_smooth`) against the
     one-voxel staircase, then one implicit mean-curvature fairing step
     (:func:`implicit_fairing`) at the largest voxel size, which flattens the wide
     terraces of thick slices that the Taubin filter cannot reach; resampling

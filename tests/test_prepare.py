@@ -327,3 +327,19 @@ def test_smoothing_can_be_forced_on_and_off():
     spread = [np.linalg.norm(x.vertices, axis=1).std() for x in (sk.Surface(noisy, noisy_sphere.faces), on)]
     assert spread[1] < 0.3 * spread[0]
     assert abs(report.volume_change) < 1e-9
+
+
+def test_large_hole_patch_follows_the_sphere():
+    """A 68-edge hole (polar cap above z = 0.8 r) in a 30 mm sphere: the biharmonic patch
+    continues the sphere (a flat cap would miss by r - 0.8 r = 6 mm and 2.8% of the volume)."""
+    s = _sphere(4)
+    f = np.array(s.faces)
+    f = f[s.vertices[f].mean(axis=1)[:, 2] < 0.8 * R]
+    holed = sk.Surface(s.vertices, f)
+    assert [len(loop) for loop in holed.boundary_loops] == [68]
+    prepared, report = sk.prepare(holed)
+    assert report.after.warnings == [] and report.after.is_watertight
+    radius = np.linalg.norm(prepared.vertices, axis=1)
+    assert np.abs(radius - R).max() < 1.0
+    assert abs(prepared.volume / s.volume - 1) < 0.005
+    assert report.after.min_angle_deg > 10
