@@ -18,7 +18,8 @@ import scipy.sparse as sp
 
 from . import repair
 from .quality import QualityReport, enclosed_centroid, indexed, quality_report
-from .repair import _umbrella, improve_triangles, resample
+from .remesh import improve_triangles, resample
+from .repair import umbrella_matrix
 from .surface import Surface, SurfaceError
 
 __all__ = [
@@ -63,7 +64,7 @@ def taubin_smooth(vertices: np.ndarray, faces: np.ndarray, iterations: int = 30,
     if not (0 < lam < -mu):
         raise ValueError(f"Taubin smoothing needs 0 < lam < -mu, got lam={lam}, mu={mu}")
     x = np.array(vertices, dtype=np.float64)
-    W = _umbrella(np.asarray(faces), len(x))
+    W = umbrella_matrix(np.asarray(faces), len(x))
     move = None if fixed is None else ~np.asarray(fixed, bool)[:, None]
     for _ in range(int(iterations)):
         for factor in (lam, mu):

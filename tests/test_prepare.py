@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import surfacekit as sk
-from surfacekit import repair
+from surfacekit import remesh, repair
 from surfacekit.operators import cotangent_laplacian
 from surfacekit.prepare import restore_volume, taubin_smooth
 from surfacekit.quality import enclosed_centroid
@@ -215,7 +215,7 @@ def test_taubin_does_not_shrink_like_laplacian_smoothing():
     v0 = sk.Surface(noisy, s.faces).volume
     taubin = sk.Surface(taubin_smooth(noisy, s.faces, 30), s.faces).volume
     # plain Laplacian smoothing with the same 60 steps of 0.5
-    w = repair._umbrella(np.asarray(s.faces), s.n_vertices)
+    w = repair.umbrella_matrix(np.asarray(s.faces), s.n_vertices)
     x = noisy.copy()
     for _ in range(60):
         x = x + 0.5 * (w @ x - x)
@@ -301,7 +301,7 @@ def test_edge_flips_reach_the_delaunay_triangulation_in_the_plane():
         return t
 
     start = upward(Delaunay(p * [4.0, 1.0]).simplices)
-    flipped, n = repair.delaunay_flips(v, start, rounds=500)
+    flipped, n = remesh.delaunay_flips(v, start, rounds=500)
     expected = upward(Delaunay(p).simplices)
 
     def edge_set(t):
