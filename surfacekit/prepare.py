@@ -329,7 +329,8 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         v, f, more = _repair(np.array(s.vertices), np.array(s.faces), **opts)
         s = indexed(Surface(v, f, metadata=metadata))
         actions.append(f"resampled from {n0} to {s.n_vertices} vertices "
-                       "(quadric decimation, edge flips, tangential relaxation)")
+                       "(quadric decimation, short-edge collapses, edge flips, tangential "
+                       "relaxation)")
         actions.extend(f"after resampling: {a}" for a in more)
 
     if preserve_volume and reference and s.is_closed:

@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from .quality import edge_pairs, indexed, row_keys
-from .repair import umbrella_matrix
+from .repair import compact, umbrella_matrix
 from .surface import Surface
 
 
@@ -73,6 +73,45 @@ def delaunay_flips(v: np.ndarray, f: np.ndarray, rounds: int = 10, max_bend_deg:
     return f, total
 
 
+def collapse_short_edges(v: np.ndarray, f: np.ndarray, ratio: float = 0.25):
+    """Collapse edges shorter than ``ratio`` x the mean edge length to their midpoints.
+
+    The edge-collapse step of isotropic remeshing (Botsch & Kobbelt, SGP 2004),
+    for the few needles decimation leaves.  An independent set of edges (no
+    shared vertex) is collapsed at once, and only edges whose endpoints share
+    exactly two neighbours (the link condition, Dey et al. 1999), so the mesh
+    stays a manifold of the same topology.  Returns ``(v, f, n_collapsed)``.
+    """
+    import scipy.sparse as sp
+
+    he, _, _, a_id, _ = edge_pairs(f)
+    i, j = he[a_id, 0], he[a_id, 1]
+    length = np.linalg.norm(v[i] - v[j], axis=1)
+    short = np.flatnonzero(length < ratio * length.mean())
+    if len(short) == 0:
+        return v, f, 0
+    n = len(v)
+    adj = sp.coo_matrix((np.ones(2 * len(i)), (np.r_[i, j], np.r_[j, i])), shape=(n, n)).tocsr()
+    common = np.asarray(adj[i[short]].multiply(adj[j[short]]).sum(axis=1)).ravel()
+    short = short[common == 2]
+    # independent set: each vertex in at most one collapse (shortest edges first)
+    short = short[np.argsort(length[short], kind="stable")]
+    ends = np.stack([i[short], j[short]], axis=1).ravel()
+    first_use = np.zeros(len(ends), bool)
+    first_use[np.unique(ends, return_index=True)[1]] = True
+    short = short[first_use.reshape(-1, 2).all(axis=1)]
+    if len(short) == 0:
+        return v, f, 0
+    keep, drop = i[short], j[short]
+    v = v.copy()
+    v[keep] = 0.5 * (v[keep] + v[drop])
+    remap = np.arange(n)
+    remap[drop] = keep
+    f = remap[f]
+    f = f[(f[:, 0] != f[:, 1]) & (f[:, 1] != f[:, 2]) & (f[:, 0] != f[:, 2])]
+    return v, f, len(short)
+
+
 def tangential_relax(vertices: np.ndarray, faces: np.ndarray, iterations: int = 3,
                      step: float = 0.5) -> np.ndarray:
     """Move vertices toward their neighbours' mean within the tangent plane only.
@@ -95,8 +134,9 @@ def tangential_relax(vertices: np.ndarray, faces: np.ndarray, iterations: int = 
 
 def improve_triangles(vertices: np.ndarray, faces: np.ndarray, rounds: int = 3
                       ) -> tuple[np.ndarray, np.ndarray]:
-    """Alternate Delaunay edge flips (:func:`delaunay_flips`) and
-    tangential relaxation (:func:`tangential_relax`), then flip once more.
+    """Alternate short-edge collapses (:func:`collapse_short_edges`), Delaunay edge
+    flips (:func:`delaunay_flips`) and tangential relaxation (:func:`tangential_relax`),
+    then flip once more; vertices left unused by collapses are dropped.
 
     Measured on a 20k-vertex liver-sized surface after quadric decimation: smallest
     angle 4° -> 20°, mean per-triangle minimum angle 39° -> 48°, enclosed volume
@@ -105,9 +145,11 @@ def improve_triangles(vertices: np.ndarray, faces: np.ndarray, rounds: int = 3
     x = np.array(vertices, dtype=np.float64)
     f = np.asarray(faces, dtype=np.int64)
     for _ in range(int(rounds)):
+        x, f, _ = collapse_short_edges(x, f)
         f, _ = delaunay_flips(x, f)
         x = tangential_relax(x, f, iterations=2)
     f, _ = delaunay_flips(x, f)
+    x, f, _ = compact(x, f)
     return x, f
 
 

@@ -343,3 +343,19 @@ def test_large_hole_patch_follows_the_sphere():
     assert np.abs(radius - R).max() < 1.0
     assert abs(prepared.volume / s.volume - 1) < 0.005
     assert report.after.min_angle_deg > 10
+
+
+def test_short_edge_collapse_keeps_a_closed_manifold():
+    """Collapsing under the link condition (Dey, Edelsbrunner, Guha & Nekhayev 1999) keeps
+    the topology: Euler characteristic 2 and a watertight surface after the collapse."""
+    s = _sphere(3)
+    v = np.array(s.vertices)
+    a, b = s.edges[0]
+    v[b] = v[a] + 0.01 * (v[b] - v[a])  # a needle-making short edge
+    v2, f2, n = remesh.collapse_short_edges(v, np.array(s.faces))
+    v2, f2, _ = repair.compact(v2, f2)
+    out = sk.Surface(v2, f2)
+    q = sk.quality_report(out)
+    assert n >= 1 and out.n_vertices == s.n_vertices - n
+    assert q.is_watertight and q.euler_characteristic == 2 and q.n_non_manifold_vertices == 0
+    assert q.min_angle_deg > 10
