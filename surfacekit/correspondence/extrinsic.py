@@ -10,14 +10,26 @@ from ..surface import Surface
 
 
 def normalized_coordinates(s: Surface) -> tuple[np.ndarray, np.ndarray, float]:
-    """Vertices centred at the area-weighted centroid and scaled to unit area.
+    """Vertices centred at the area-weighted centroid and scaled to a common size.
 
+    The scale is ``1 / (sqrt(4π) r)`` with r the area-weighted RMS distance from
+    the centroid: unit area for a sphere, and, unlike the area itself, hardly
+    changed by scanner noise (a rough surface has much more area).
     Returns ``(points (n, 3) dimensionless, centroid (3,) mm, scale 1/mm)`` with
-    ``points = (vertices - centroid) * scale`` and ``scale = 1/sqrt(area)``.
+    ``points = (vertices - centroid) * scale``.
     """
     c = s.centroid
-    scale = 1.0 / np.sqrt(s.area)
+    w = s.vertex_areas / s.area
+    r = np.sqrt(w @ np.sum((s.vertices - c) ** 2, axis=1))
+    scale = 1.0 / (np.sqrt(4 * np.pi) * max(r, 1e-300))
     return (s.vertices - c) * scale, c, scale
+
+
+def plane_distances(points: np.ndarray, tree: cKDTree, surf_points: np.ndarray,
+                    normals: np.ndarray) -> np.ndarray:
+    """Point-to-plane distance of each point to the tangent plane at its closest surface vertex, (p,)."""
+    _, j = tree.query(points)
+    return np.abs(np.einsum("ij,ij->i", points - surf_points[j], normals[j]))
 
 
 def principal_frame(points: np.ndarray, weights: np.ndarray) -> np.ndarray:
@@ -135,3 +147,36 @@ def distinct_poses(poses: list, scores: np.ndarray, n_keep: int, min_angle_deg: 
         if len(keep) >= n_keep:
             break
     return keep
+
+
+def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndarray, tgt: np.ndarray,
+                          *, sizes=(3, 6, 10, 16, 24), iterations: int = 4,
+                          stiffness: float = 1e-3, tgt_tree: cKDTree | None = None) -> np.ndarray:
+    """Smooth non-rigid ICP: a displacement field in the low Laplace–Beltrami eigenfunctions.
+
+    Closest points in both directions (as in :func:`icp`) define where each point
+    should go; the displacement ``basis[:, :k] @ A`` (k growing through `sizes`,
+    coarse to fine) is fitted to them by least squares with a penalty
+    ``stiffness × n × Σ λ_a |A_a|²`` that damps high frequencies.  This is ICP
+    (Besl & McKay 1992) with the deformation restricted to a spectral basis, as in
+    spectral shape approximation (Lévy, SMI 2006).
+
+    points (p, 3) rigidly aligned source samples; basis (p, K) source eigenvectors
+    at the samples (unit-area scaling); values (K,) unit-area eigenvalues; tgt
+    (q, 3).  Returns the displacement coefficients A (k_last, 3).
+    """
+    tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
+    A = np.zeros((0, 3))
+    for k in sizes:
+        k = min(k, basis.shape[1])
+        A = np.vstack([A, np.zeros((k - len(A), 3))])[:k]
+        B = basis[:, :k]
+        reg = stiffness * (len(points) + len(tgt)) * np.diag(values[:k])
+        for _ in range(iterations):
+            Y = points + B @ A
+            _, j = tree_t.query(Y)
+            _, i = cKDTree(Y).query(tgt)
+            lhs = B.T @ B + B[i].T @ B[i] + reg
+            rhs = B.T @ (tgt[j] - points) + B[i].T @ (tgt - points[i])
+            A = np.linalg.solve(lhs, rhs)
+    return A

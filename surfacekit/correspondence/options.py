@@ -13,10 +13,10 @@ class MatchOptions:
     n_eigen : int, default 60
         Laplace–Beltrami eigenpairs per surface; the final functional map is
         n_eigen x n_eigen.  Eigenbases are cached on the surfaces.
-    n_samples : int, default 1500
+    n_samples : int, default 1000
         Well-spread vertices per surface on which the candidates are refined; the
         final map is extended to every vertex.
-    zoomout_start, zoomout_step : int, default 6, 3
+    zoomout_start, zoomout_step : int, default 6, 4
         First spectral size and increment of the ZoomOut refinement.
     same_orientation : bool or None, default None
         True: both scans share the scanner's orientation, so only poses within
@@ -24,13 +24,19 @@ class MatchOptions:
         gets no special treatment).  None: try the identity and all principal-axis
         poses (works in both situations).
     n_poses : int, default 4
-        Distinct rigid poses (after a coarse ICP) refined into full candidates.
-    coordinate_weight : float, default 1.5
-        Weight of the aligned, unit-area coordinates appended to the spectral
-        embedding during refinement (0 = purely intrinsic refinement).
-    coordinate_decay : float, default 0.3
-        Factor by which `coordinate_weight` shrinks from the first to the last
-        refinement step.
+        Distinct rigid poses (after a coarse ICP) refined into candidates.
+    n_finalists : int, default 2
+        Candidates (by energy after the coarse refinement up to `zoomout_mid`)
+        refined up to `n_eigen`.
+    zoomout_mid : int, default 20
+        Spectral size at which candidates are compared and pruned.
+    coordinate_weight : float, default 100.0
+        Weight of the unit-size coordinates of the (deformed) source and the target
+        appended to the spectral embedding during refinement (0 = purely intrinsic
+        refinement).  The spectral rows have norm ~sqrt(k), coordinates ~0.3.
+    deform_k : int, default 24
+        Eigenfunctions in the smooth non-rigid ICP that deforms the aligned source
+        onto the target before refinement (0 = rigid pose only).
     bijective : bool, default True
         Estimate each functional map from both map directions.
     intrinsic_candidate : bool, default True
@@ -47,13 +53,15 @@ class MatchOptions:
     """
 
     n_eigen: int = 60
-    n_samples: int = 1500
+    n_samples: int = 1000
     zoomout_start: int = 6
-    zoomout_step: int = 3
+    zoomout_step: int = 4
     same_orientation: bool | None = None
     n_poses: int = 4
-    coordinate_weight: float = 1.5
-    coordinate_decay: float = 0.3
+    n_finalists: int = 2
+    zoomout_mid: int = 20
+    coordinate_weight: float = 100.0
+    deform_k: int = 24
     bijective: bool = True
     intrinsic_candidate: bool = True
     intrinsic_k: int = 30
@@ -70,6 +78,8 @@ class MatchOptions:
             raise ValueError(f"zoomout_start must be in [1, n_eigen], got {self.zoomout_start}")
         if self.zoomout_step < 1:
             raise ValueError(f"zoomout_step must be >= 1, got {self.zoomout_step}")
+        if self.n_finalists < 1:
+            raise ValueError(f"n_finalists must be >= 1, got {self.n_finalists}")
         if self.n_poses < 1:
             raise ValueError(f"n_poses must be >= 1, got {self.n_poses}")
         if self.coordinate_weight < 0:

@@ -1,6 +1,7 @@
 """`match`: dense correspondence by combining extrinsic and intrinsic candidates."""
 from __future__ import annotations
 
+import contextlib
 import logging
 import time
 from dataclasses import dataclass
@@ -11,12 +12,22 @@ from scipy.spatial import cKDTree
 from ..operators import eigenbasis
 from ..surface import Surface, SurfaceError
 from . import extrinsic as ex
+from .fmap import SpectralShape, estimate_fmap, spectral_descriptors
 from .options import MatchOptions
 from .result import Correspondence
 from .sampling import farthest_points
-from .zoomout import nearest_rows, zoomout
+from .zoomout import nearest_rows, pointmaps_from_fmap, zoomout
 
 log = logging.getLogger("surfacekit")
+
+
+def _blas_single_thread():
+    """Limit BLAS to one thread: the matrices here are small, and threads only add contention."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # optional; results are identical either way
+        return contextlib.nullcontext()
+    return threadpool_limits(1, user_api="blas")
 
 
 @dataclass
@@ -29,6 +40,9 @@ class _Shape:
     values: np.ndarray      # (k,) eigenvalues scaled to unit area
     samples: np.ndarray     # (p,) well-spread vertex indices
     weights: np.ndarray     # (n,) vertex areas / total area
+    tree: cKDTree           # over all normalised points
+    spectral: SpectralShape
+    desc: np.ndarray        # (n, d) unit-norm spectral descriptors
 
     @property
     def sp(self) -> np.ndarray:
@@ -38,14 +52,19 @@ class _Shape:
     def sphi(self) -> np.ndarray:
         return self.phi[self.samples]
 
+    @property
+    def sdesc(self) -> np.ndarray:
+        return self.desc[self.samples]
+
 
 def _prepare(s: Surface, opts: MatchOptions, seed: int) -> _Shape:
     basis = eigenbasis(s, opts.n_eigen)
     pts, _, scale = ex.normalized_coordinates(s)
     area = float(basis.mass.sum())
     samples = np.sort(farthest_points(pts, min(opts.n_samples, s.n_vertices), seed=seed))
-    return _Shape(s, pts, np.asarray(basis.vectors) * np.sqrt(area), np.asarray(basis.values) * area,
-                  samples, s.vertex_areas / s.area)
+    spectral = SpectralShape.from_basis(s, basis)
+    return _Shape(s, pts, spectral.phi, spectral.values, samples, s.vertex_areas / s.area,
+                  cKDTree(pts), spectral, spectral_descriptors(spectral, basis))
 
 
 def _check_inputs(source, target, options) -> MatchOptions:
@@ -79,48 +98,80 @@ def _coarse_poses(src: _Shape, tgt: _Shape, opts: MatchOptions, seed: int) -> li
     return [poses[i] for i in keep]
 
 
-def _refine_pose(src: _Shape, tgt: _Shape, pose, opts: MatchOptions) -> dict:
-    """One extrinsic candidate: ICP on the samples, closest points, then ZoomOut with coordinates."""
-    R, t, s, _ = ex.icp(src.sp, tgt.sp, pose[0], iterations=opts.icp_iterations, scaling=opts.scaling)
+def _stage(src: _Shape, tgt: _Shape, cand: dict, ks, opts: MatchOptions) -> dict:
+    """Advance a candidate through ZoomOut steps `ks`, with coordinates following a smooth deformation."""
+    C, t2s, s2t, coords = zoomout(tgt.sphi, src.sphi, cand["t2s"], ks=ks, bijective=opts.bijective,
+                                  coords_t=tgt.sp, coords_s=cand["coords"], s2t=cand.get("s2t"),
+                                  coord_weight=opts.coordinate_weight)
+    return {**cand, "C": C, "t2s": t2s, "s2t": s2t, "coords": coords}
+
+
+def _extrinsic_start(src: _Shape, tgt: _Shape, pose, opts: MatchOptions) -> dict:
+    """Initial candidate from a rigid pose: ICP on the samples, then closest points."""
+    R, t, s, rms = ex.icp(src.sp, tgt.sp, pose[0], iterations=opts.icp_iterations,
+                          scaling=opts.scaling)
+    return _deformed_start(src, tgt, "extrinsic", R, t, s, opts)
+
+
+def _deformed_start(src: _Shape, tgt: _Shape, route: str, R, t, s, opts: MatchOptions) -> dict:
+    """Candidate start from a rigid pose: smooth non-rigid ICP, then closest points."""
     moved = s * src.sp @ R.T + t
-    t2s = nearest_rows(tgt.sp, moved)
-    C, t2s, s2t = zoomout(tgt.sphi, src.sphi, t2s, k_start=opts.zoomout_start, k_end=opts.n_eigen,
-                          step=opts.zoomout_step, bijective=opts.bijective, coords_t=tgt.sp,
-                          coords_s=moved, coord_weight=opts.coordinate_weight,
-                          coord_decay=opts.coordinate_decay)
-    return {"route": "extrinsic", "C": C, "t2s": t2s, "s2t": s2t, "pose": (R, t, s)}
+    A = np.zeros((0, 3))
+    if opts.deform_k > 0:
+        sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
+        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes)
+    coords = moved + src.sphi[:, :len(A)] @ A
+    return {"route": route, "t2s": nearest_rows(tgt.sp, coords), "coords": coords,
+            "pose": (R, t, s), "displacement": A, "pose_residual": _pose_residual(src, tgt, R, t, s)}
+
+
+def _pose_residual(src: _Shape, tgt: _Shape, R, t, s) -> float:
+    """Robust misfit of a rigid pose: mean point-to-plane distance of all source vertices to
+    the target, each capped at the 90th percentile (so local growth does not dominate)."""
+    d = ex.plane_distances(s * src.points @ R.T + t, tgt.tree, tgt.points, tgt.surface.vertex_normals)
+    return float(np.mean(np.minimum(d, np.percentile(d, 90))))
+
+
+def _intrinsic_start(src: _Shape, tgt: _Shape, opts: MatchOptions) -> dict:
+    """Initial candidate from descriptors alone; its pose is then fitted to the map (Kabsch)."""
+    k = min(opts.intrinsic_k, src.phi.shape[1], tgt.phi.shape[1])
+    C = estimate_fmap(src.spectral, tgt.spectral, src.desc, tgt.desc, k)
+    t2s, _ = pointmaps_from_fmap(C, tgt.sphi[:, :k], src.sphi[:, :k], both=False)
+    R, _, _ = ex.kabsch(src.sp[t2s], tgt.sp)
+    R, t, s, _ = ex.icp(src.sp, tgt.sp, R, iterations=opts.icp_iterations, scaling=opts.scaling)
+    return _deformed_start(src, tgt, "intrinsic", R, t, s, opts)
 
 
 def _energy(src: _Shape, tgt: _Shape, cand: dict) -> dict:
     """Unsupervised energy of a candidate on the samples (lower is better); no ground truth used.
 
-    Terms (all in unit-area units): coordinate residual after the best rigid fit of
-    the map, round-trip (bijectivity) distance on both shapes, and a coverage
-    penalty (fraction of samples never hit).
+    Terms: robust residual of the candidate's rigid pose (unit-size units; what
+    tells a near-symmetric shape from its rotated copy), round-trip (bijectivity)
+    distance on both shapes, and descriptor disagreement relative to a random map.
     """
     t2s, s2t = cand["t2s"], cand["s2t"]
-    a, b = src.sp[t2s], tgt.sp
-    R, t, s = ex.kabsch(a, b)
-    coord = float(np.sqrt(np.mean(np.sum((s * a @ R.T + t - b) ** 2, axis=1))))
+    desc = float(np.mean(np.linalg.norm(tgt.sdesc - src.sdesc[t2s], axis=1))
+                 / np.mean(np.linalg.norm(tgt.sdesc - src.sdesc[np.roll(t2s, len(t2s) // 2)], axis=1)))
     rt_t = float(np.mean(np.linalg.norm(tgt.sp[s2t[t2s]] - tgt.sp, axis=1)))
     rt_s = float(np.mean(np.linalg.norm(src.sp[t2s[s2t]] - src.sp, axis=1)))
     cover = 1.0 - 0.5 * (len(np.unique(t2s)) / len(s2t) + len(np.unique(s2t)) / len(t2s))
-    total = coord + 0.5 * (rt_t + rt_s) + 0.1 * cover
-    return {"total": total, "coordinate": coord, "round_trip": 0.5 * (rt_t + rt_s), "coverage_gap": cover}
+    rigid = cand["pose_residual"]
+    total = rigid + 0.1 * (rt_t + rt_s) + 0.01 * desc
+    return {"total": total, "rigid_residual": rigid, "descriptor": desc,
+            "round_trip": 0.5 * (rt_t + rt_s), "coverage_gap": cover}
 
 
 def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
-    """Full-resolution point maps from the candidate's functional map (+ weighted coordinates)."""
+    """Full-resolution point maps from the candidate's functional map and deformed coordinates."""
     C = cand["C"]
     k = C.shape[0]
+    w = opts.coordinate_weight
     R, t, s = cand["pose"]
-    w = opts.coordinate_weight * opts.coordinate_decay
-    moved = s * src.points @ R.T + t
+    A = cand["displacement"]
+    moved = s * src.points @ R.T + t + src.phi[:, :len(A)] @ A
     emb_t = np.hstack([tgt.phi[:, :k] @ C, w * tgt.points])
     emb_s = np.hstack([src.phi[:, :k], w * moved])
-    t2s, dt = nearest_rows(emb_t, emb_s, return_distance=True)
-    s2t, ds = nearest_rows(emb_s, emb_t, return_distance=True)
-    return t2s, s2t
+    return nearest_rows(emb_t, emb_s), nearest_rows(emb_s, emb_t)
 
 
 def _confidence(points: np.ndarray, roundtrip: np.ndarray, width: float = 0.05) -> np.ndarray:
@@ -164,16 +215,30 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     timings = {}
     src, tgt = _prepare(source, opts, seed), _prepare(target, opts, seed + 1)
     timings["prepare"] = time.perf_counter() - t0
-    candidates = [_refine_pose(src, tgt, pose, opts) for pose in _coarse_poses(src, tgt, opts, seed)]
-    timings["candidates"] = time.perf_counter() - t0 - timings["prepare"]
-    energies = [_energy(src, tgt, c) for c in candidates]
-    best = int(np.argmin([e["total"] for e in energies]))
-    t2s, s2t = _extend(src, tgt, candidates[best], opts)
+    with _blas_single_thread():
+        starts = [_extrinsic_start(src, tgt, pose, opts) for pose in _coarse_poses(src, tgt, opts, seed)]
+        if opts.intrinsic_candidate:
+            starts.append(_intrinsic_start(src, tgt, opts))
+        k_mid = min(opts.zoomout_mid, opts.n_eigen)
+        coarse = [_stage(src, tgt, c, range(opts.zoomout_start, k_mid + 1, opts.zoomout_step), opts)
+                  for c in starts]
+        coarse_e = [_energy(src, tgt, c)["total"] for c in coarse]
+        timings["coarse"] = time.perf_counter() - t0 - timings["prepare"]
+        keep = np.argsort(coarse_e)[: opts.n_finalists]
+        ks = list(range(k_mid + opts.zoomout_step, opts.n_eigen + 1, opts.zoomout_step)) or [k_mid]
+        if ks[-1] != opts.n_eigen and opts.n_eigen > k_mid:
+            ks.append(opts.n_eigen)
+        candidates = [_stage(src, tgt, coarse[i], ks, opts) for i in keep]
+        energies = [_energy(src, tgt, c) for c in candidates]
+        best = int(np.argmin([e["total"] for e in energies]))
+        timings["fine"] = time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
+        t2s, s2t = _extend(src, tgt, candidates[best], opts)
     timings["total"] = time.perf_counter() - t0
     info = {
         "route": candidates[best]["route"],
-        "chosen": best,
+        "coarse_energies": [float(e) for e in coarse_e],
         "candidates": [{"route": c["route"], **e} for c, e in zip(candidates, energies)],
+        "chosen": best,
         "timings_s": timings,
         "options": opts.to_dict(),
         "seed": int(seed),

@@ -16,12 +16,14 @@ def nearest_rows(query: np.ndarray, data: np.ndarray, *, chunk: int = 2048,
     """
     query = np.ascontiguousarray(query, dtype=np.float64)
     data = np.ascontiguousarray(data, dtype=np.float64)
-    if data.shape[1] <= 8:
+    if data.shape[1] > 12:  # single precision halves the cost of the products
+        query, data = query.astype(np.float32), data.astype(np.float32)
+    if data.shape[1] <= 12:
         d, idx = cKDTree(data).query(query)
         return (idx.astype(np.int64), d) if return_distance else idx.astype(np.int64)
     dn = np.einsum("ij,ij->i", data, data)
+    dist = np.empty(len(query), dtype=np.float64)
     idx = np.empty(len(query), dtype=np.int64)
-    dist = np.empty(len(query))
     for start in range(0, len(query), chunk):
         q = query[start:start + chunk]
         d2 = dn[None, :] - 2.0 * (q @ data.T)
@@ -44,7 +46,11 @@ def fmap_from_pointmap(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray,
     if s2t is not None:
         A = np.vstack([A, phi_t[s2t]])
         B = np.vstack([B, phi_s])
-    return np.linalg.lstsq(A, B, rcond=None)[0]
+    # normal equations: A has few, well-conditioned columns (sampled eigenvectors),
+    # and this is far cheaper than an SVD-based least-squares solve
+    AtA = A.T @ A
+    AtA[np.diag_indices_from(AtA)] += 1e-9 * np.trace(AtA) / len(AtA)
+    return np.linalg.solve(AtA, A.T @ B)
 
 
 def pointmaps_from_fmap(C: np.ndarray, phi_t: np.ndarray, phi_s: np.ndarray,
@@ -67,40 +73,59 @@ def pointmaps_from_fmap(C: np.ndarray, phi_t: np.ndarray, phi_s: np.ndarray,
     return t2s, s2t
 
 
-def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, k_start: int = 8,
-            k_end: int = 60, step: int = 4, bijective: bool = True,
+def smooth_deformation(phi_s: np.ndarray, target_points: np.ndarray, s2t: np.ndarray,
+                       k: int) -> np.ndarray:
+    """Source positions deformed smoothly onto the target, (p, 3).
+
+    The target coordinates carried to the source by `s2t` are projected on the
+    first k source eigenfunctions (least squares on the samples): a low-pass,
+    non-rigid deformation that follows the map's large-scale motion but not its
+    local errors (the spectral shape approximation of Lévy, SMI 2006).
+    phi_s (p, K) sampled source eigenvectors, target_points (q, 3).
+    """
+    basis = phi_s[:, :k]
+    coef = np.linalg.lstsq(basis, target_points[s2t], rcond=None)[0]
+    return basis @ coef
+
+
+def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, bijective: bool = True,
             coords_t: np.ndarray | None = None, coords_s: np.ndarray | None = None,
-            coord_weight: float = 0.0, coord_decay: float = 0.5):
+            coord_weight: float = 0.0, deform_k: int = 0, s2t: np.ndarray | None = None):
     """ZoomOut spectral upsampling (Melzi, Ren, Rodolà, Sharma, Wonka & Ovsjanikov, ACM TOG / SIGGRAPH Asia 2019).
 
-    Alternates, for k = k_start, k_start + step, ..., k_end: the k x k functional
-    map of the current point map, then a new point map by nearest neighbours in the
-    k-dimensional spectral embeddings.  Run on well-spread vertex subsets for speed.
+    Alternates, for each k in `ks` (increasing): the k x k functional map of the
+    current point maps, then new point maps by nearest neighbours in the
+    k-dimensional spectral embeddings.  Run on well-spread vertex samples for speed.
 
     Parameters
     ----------
     phi_t, phi_s : (q, K), (p, K) eigenvectors at the sampled target/source vertices,
         scaled to unit surface area so that both shapes' embeddings are comparable
     t2s : (q,) initial target-to-source map (indices into the source samples)
+    ks : increasing spectral sizes, e.g. ``range(6, 61, 3)``
     bijective : estimate each C from both map directions (see :func:`fmap_from_pointmap`)
-    coords_t, coords_s : (q, 3), (p, 3) aligned, normalised coordinates; appended to
-        the embeddings with weight ``coord_weight * coord_decay**(i / n_steps)``
-        at step i, so positions guide the early, coarse steps most
+    coords_t, coords_s : (q, 3), (p, 3) aligned, normalised coordinates appended to
+        the embeddings with weight `coord_weight`
+    deform_k : if > 0, after each step the source coordinates are replaced by the
+        smooth deformation of the source onto the target (:func:`smooth_deformation`
+        with ``min(k, deform_k)`` eigenfunctions), so coordinates keep guiding the
+        map through non-rigid motion
+    s2t : (p,) optional initial source-to-target map
 
     Returns
     -------
-    C : (k_end, k_end) final functional map; t2s (q,); s2t (p,)
+    C : (k, k) final functional map; t2s (q,); s2t (p,); coords_s (p, 3) as last used
     """
-    ks = list(range(k_start, k_end + 1, step))
-    if ks[-1] != k_end:
-        ks.append(k_end)
-    s2t = None
-    for i, k in enumerate(ks):
+    ks = list(ks)
+    use_coords = coords_t is not None and coord_weight > 0
+    for k in ks:
         C = fmap_from_pointmap(phi_t[:, :k], phi_s[:, :k], t2s, s2t if bijective else None)
-        w = coord_weight * coord_decay ** (i / max(len(ks) - 1, 1))
-        if coords_t is not None and w > 0:
-            t2s, s2t = pointmaps_from_fmap(C, phi_t[:, :k], phi_s[:, :k], w * coords_t, w * coords_s)
+        if use_coords and deform_k > 0 and s2t is not None:
+            coords_s = smooth_deformation(phi_s, coords_t, s2t, min(k, deform_k))
+        if use_coords:
+            t2s, s2t = pointmaps_from_fmap(C, phi_t[:, :k], phi_s[:, :k], coord_weight * coords_t,
+                                           coord_weight * coords_s)
         else:
             t2s, s2t = pointmaps_from_fmap(C, phi_t[:, :k], phi_s[:, :k])
-    C = fmap_from_pointmap(phi_t[:, :k_end], phi_s[:, :k_end], t2s, s2t if bijective else None)
-    return C, t2s, s2t
+    C = fmap_from_pointmap(phi_t[:, :ks[-1]], phi_s[:, :ks[-1]], t2s, s2t if bijective else None)
+    return C, t2s, s2t, coords_s
