@@ -230,11 +230,13 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     non-manifold edges and split pinched vertices; keep the largest component;
     orient faces consistently (then outward); fill holes up to
     ``max_hole_edges`` with ring patches placed by a biharmonic fill
-    (:func:`surfacekit.repair.fill_holes`); smoothing: Taubin λ|μ (:func:`taubin_smooth`) against the
-    one-voxel staircase, then one implicit mean-curvature fairing step
-    (:func:`implicit_fairing`) at the largest voxel size, which flattens the wide
-    terraces of thick slices that the Taubin filter cannot reach; resampling
-    to ``target_vertices`` (:func:`resample`), followed by the repair chain again;
+    (:func:`surfacekit.repair.fill_holes`); smoothing: Taubin λ|μ
+    (:func:`taubin_smooth`) against the one-voxel staircase, then one implicit
+    mean-curvature fairing step (:func:`implicit_fairing`) at the largest voxel
+    size, which flattens the wide terraces of thick slices that the Taubin filter
+    cannot reach, then edge collapses/flips and tangential relaxation for
+    well-shaped triangles; resampling to ``target_vertices``
+    (:func:`surfacekit.remesh.resample`), followed by the repair chain again;
     finally a uniform rescale about the enclosed centroid restores the enclosed
     volume of the repaired, unsmoothed input (:func:`restore_volume`), so
     smoothing and decimation do not bias organ volumes.
