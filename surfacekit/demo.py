@@ -188,6 +188,10 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
         "map mean confidence": float(np.mean(corr.confidence)) if corr.confidence is not None else None,
         "cohort subjects (failed)": f"{cohort.n_subjects} ({cohort.n_failed})",
     }
+    if cohort_table:
+        top = max(cohort_table, key=lambda r: r["vertices with p_FWER < 0.05"] or 0)
+        summary["cohort: region with most vertices at p_FWER < 0.05 (growth vs control)"] = (
+            f"{top['region']} ({top['vertices with p_FWER < 0.05']} of {top['vertices']})")
     figures = change_figures(base, change, regional, corr)
     figures["Template regions"] = rfig.surface_figure(template, t_labels, title="region",
                                                       kind="labels")
