@@ -207,7 +207,7 @@ class Eigenbasis:
     def k(self) -> int:
         return int(self.values.shape[0])
 
-    def truncate(self, k: int) -> "Eigenbasis":
+    def truncate(self, k: int) -> Eigenbasis:
         if k > self.k:
             raise ValueError(f"basis has {self.k} eigenpairs, {k} requested")
         return Eigenbasis(self.values[:k], self.vectors[:, :k], self.mass, self.solver, self.notes)

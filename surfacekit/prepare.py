@@ -17,7 +17,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from . import repair
-from .quality import QualityReport, enclosed_centroid, indexed, quality_report
+from .quality import QualityReport, enclosed_centroid, quality_report
 from .remesh import improve_triangles, resample
 from .repair import umbrella_matrix
 from .surface import Surface, SurfaceError
@@ -125,12 +125,12 @@ def restore_volume(surface: Surface, volume: float) -> tuple[Surface, float]:
     centroid and the shape and restores the enclosed volume exactly.  Returns the
     new surface and the scale factor applied.
     """
-    current = indexed(surface).signed_volume
+    current = surface.signed_volume
     if not surface.is_closed or current <= 0 or volume <= 0:
         return surface, 1.0
     scale = float((volume / current) ** (1.0 / 3.0))
     c = enclosed_centroid(surface)
-    return indexed(surface.copy_with(vertices=c + scale * (surface.vertices - c))), scale
+    return surface.copy_with(vertices=c + scale * (surface.vertices - c)), scale
 
 
 # ---------------------------------------------------------------- the pipeline
@@ -273,7 +273,6 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
             surface = Surface(surface.vertices, surface.faces)
         else:
             raise SurfaceError(f"prepare needs a Surface, got {type(surface).__name__}")
-    indexed(surface)
     if target_vertices is not None and (int(target_vertices) != target_vertices
                                         or target_vertices < 4):
         raise ValueError(f"target_vertices must be an integer >= 4, got {target_vertices!r}")
@@ -289,7 +288,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     opts = {"keep_largest": keep_largest, "max_hole_edges": max_hole_edges,
             "merge_tolerance": merge_tolerance}
     v, f, actions = _repair(np.array(surface.vertices), np.array(surface.faces), **opts)
-    s = indexed(Surface(v, f, metadata=metadata))
+    s = Surface(v, f, metadata=metadata)
     reference = s.signed_volume if s.is_closed else None
     report = PrepareReport(before=before, after=before, actions=actions,
                            reference_volume_mm3=reference, parameters=params)
@@ -310,9 +309,9 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         improve = target_vertices is None and fixed is None  # resampling improves anyway
         if improve:
             x, f_new = improve_triangles(x, s.faces)
-            s = indexed(s.copy_with(vertices=x, faces=f_new))
+            s = s.copy_with(vertices=x, faces=f_new)
         else:
-            s = indexed(s.copy_with(vertices=x))
+            s = s.copy_with(vertices=x)
         what = (f"Taubin λ|μ, {smoothing_iterations} iterations, then implicit fairing at "
                 f"{fairing_scale_mm:.3g} mm")
         if improve:
@@ -329,7 +328,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         n0 = s.n_vertices
         s = resample(s, int(target_vertices))
         v, f, more = _repair(np.array(s.vertices), np.array(s.faces), **opts)
-        s = indexed(Surface(v, f, metadata=metadata))
+        s = Surface(v, f, metadata=metadata)
         actions.append(f"resampled from {n0} to {s.n_vertices} vertices "
                        "(quadric decimation, short-edge collapses, edge flips, tangential "
                        "relaxation)")

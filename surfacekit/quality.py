@@ -143,22 +143,6 @@ def corner_fan_labels(faces: np.ndarray) -> np.ndarray:
     return connected_components(g, directed=False)[1]
 
 
-def indexed(surface: Surface) -> Surface:
-    """Fill the surface's cached edge index from 1-D row keys and return the surface.
-
-    ``Surface`` derives edges, boundary and closedness from a row-wise ``np.unique``,
-    which takes seconds on a 150k-vertex marching-cubes mesh; the same index
-    (identical arrays, same lexicographic order) from packed keys takes a fraction
-    of that.  The surface is read-only, so a filled cache can never go stale.
-    """
-    if "_edge_index" not in surface.__dict__:
-        sorted_he = np.sort(surface._half_edges, axis=1)
-        _, first, inverse, counts = np.unique(row_keys(sorted_he), return_index=True,
-                                              return_inverse=True, return_counts=True)
-        surface.__dict__["_edge_index"] = (sorted_he[first], inverse.ravel(), counts)
-    return surface
-
-
 def enclosed_centroid(surface: Surface) -> np.ndarray:
     """(3,) centroid of the solid enclosed by a closed, oriented surface (mm).
 
@@ -263,7 +247,7 @@ def quality_report(surface: Surface) -> QualityReport:
     -------
     QualityReport
     """
-    s = indexed(surface)
+    s = surface
     f, v = s.faces, s.vertices
     rep_map = coincident_vertex_map(v)
     n_dup_v = int(np.count_nonzero(rep_map != np.arange(s.n_vertices)))

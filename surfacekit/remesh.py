@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .quality import edge_pairs, indexed, row_keys
+from .quality import edge_pairs, row_keys
 from .repair import compact, umbrella_matrix
 from .surface import Surface
 
@@ -192,4 +192,4 @@ def resample(surface: Surface, target_vertices: int) -> Surface:
         v, f = fast_simplification.simplify(v, f.astype(np.int32), target_count=target_faces,
                                             agg=7.0)
     v, f = improve_triangles(v, f)
-    return indexed(surface.copy_with(vertices=v, faces=np.asarray(f, dtype=np.int64)))
+    return surface.copy_with(vertices=v, faces=np.asarray(f, dtype=np.int64))

@@ -17,7 +17,6 @@ from .quality import (
     duplicate_faces,
     edge_pairs,
     inconsistent_edges,
-    indexed,
     row_keys,
 )
 from .surface import Surface, SurfaceError
@@ -151,7 +150,7 @@ def keep_largest_component(v: np.ndarray, f: np.ndarray):
 
     Returns ``(v, f, n_removed_components, n_removed_vertices)``.
     """
-    s = indexed(Surface(v, f))
+    s = Surface(v, f)
     lab = s.vertex_components[f[:, 0]]
     area = np.bincount(lab, weights=s.face_areas)
     present = np.unique(lab)
@@ -220,7 +219,7 @@ def fill_holes(v: np.ndarray, f: np.ndarray, max_hole_edges: int):
     New faces traverse the loop opposite to its faces, so a consistently oriented
     mesh stays consistent.  Returns ``(v, f, n_filled, n_left)``.
     """
-    loops = indexed(Surface(v, f)).boundary_loops
+    loops = Surface(v, f).boundary_loops
     patches = []
     n_new = 0
     n_left = 0

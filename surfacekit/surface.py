@@ -97,7 +97,7 @@ class Surface:
 
     # ------------------------------------------------------------------ basics
     @classmethod
-    def from_trimesh(cls, mesh, *, metadata: dict | None = None) -> "Surface":
+    def from_trimesh(cls, mesh, *, metadata: dict | None = None) -> Surface:
         """Build a Surface from a ``trimesh.Trimesh`` (no processing is applied)."""
         return cls(np.asarray(mesh.vertices), np.asarray(mesh.faces), metadata=metadata)
 
@@ -107,7 +107,7 @@ class Surface:
 
         return trimesh.Trimesh(self.vertices.copy(), self.faces.copy(), process=False)
 
-    def copy_with(self, vertices=None, faces=None, metadata=None) -> "Surface":
+    def copy_with(self, vertices=None, faces=None, metadata=None) -> Surface:
         """A new Surface sharing what is not replaced."""
         return Surface(
             self._vertices if vertices is None else vertices,
@@ -219,8 +219,11 @@ class Surface:
     @cached_property
     def _edge_index(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         sorted_he = np.sort(self._half_edges, axis=1)
-        edges, inverse, counts = np.unique(sorted_he, axis=0, return_inverse=True, return_counts=True)
-        return edges, inverse.ravel(), counts
+        # 1-D keys i * n + j sort like the rows (i, j) and unique far faster than axis=0
+        keys = sorted_he[:, 0] * np.int64(self.n_vertices) + sorted_he[:, 1]
+        _, first, inverse, counts = np.unique(keys, return_index=True, return_inverse=True,
+                                              return_counts=True)
+        return sorted_he[first], inverse.ravel(), counts
 
     @cached_property
     def edges(self) -> np.ndarray:
@@ -301,7 +304,7 @@ class Surface:
     def n_components(self) -> int:
         """Number of connected components among vertices used by faces."""
         used = np.unique(self._faces)
-        return int(len(np.unique(self._components[1][used])))
+        return len(np.unique(self._components[1][used]))
 
     @cached_property
     def n_unreferenced_vertices(self) -> int:
