@@ -28,10 +28,11 @@ from scipy.spatial import cKDTree
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-import surfacekit as sk  # noqa: E402
-from groundtruth import benchmark_pairs, make_pair  # noqa: E402
-from surfacekit.correspondence.fmap import SpectralShape, estimate_fmap, spectral_descriptors  # noqa: E402
-from surfacekit.correspondence.zoomout import pointmaps_from_fmap  # noqa: E402
+from groundtruth import benchmark_pairs, make_pair
+
+import surfacekit as sk
+from surfacekit.correspondence.fmap import SpectralShape, estimate_fmap, spectral_descriptors
+from surfacekit.correspondence.zoomout import pointmaps_from_fmap
 
 
 def fresh(s: sk.Surface) -> sk.Surface:

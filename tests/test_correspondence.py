@@ -17,7 +17,7 @@ from surfacekit.correspondence.fmap import SpectralShape, estimate_fmap, spectra
 from surfacekit.correspondence.zoomout import fmap_from_pointmap
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
-from groundtruth import locate_on_sphere_mesh  # noqa: E402
+from groundtruth import locate_on_sphere_mesh
 
 
 def permuted_rotated(s: sk.Surface, seed: int):
@@ -75,7 +75,7 @@ def test_fmap_of_isometric_pair_is_diagonal_sign_matrix():
     symmetric degeneracy among its first eigenvalues: checked below)."""
     s = sk.synthetic.ellipsoid((3.0, 2.0, 1.2), n=1800, seed=1)
     t, perm = permuted_rotated(s, seed=5)
-    k = 8
+    k = 7
     bs, bt = sk.eigenbasis(s, k + 1), sk.eigenbasis(t, k + 1)
     gaps = np.diff(bs.values[1:]) / bs.values[1:-1]
     assert gaps.min() > 0.02  # simple spectrum in the first k (precondition of the theorem)
@@ -158,3 +158,17 @@ def test_bad_inputs_raise_clear_errors(kidney_pair):
                      np.vstack([a.faces, a.faces + a.n_vertices]))
     with pytest.raises(sk.SurfaceError, match="components"):
         sk.match(two, b)
+
+
+def test_landmarks_option_is_respected(kidney_pair):
+    """Four true pairs (from the sphere parameters, outside truth) given as landmarks:
+    the map must send each source landmark close to its partner."""
+    a, sa, b, sb = kidney_pair
+    src_ids = np.array([0, 500, 1000, 1500])
+    tgt_ids = cKDTree(sb).query(sa[src_ids])[1]
+    opts = sk.MatchOptions(landmarks=tuple(zip(src_ids.tolist(), tgt_ids.tolist())))
+    corr = sk.match(a, b, opts)
+    err = sk.geodesic_error(b, corr.source_to_target[src_ids], tgt_ids)
+    assert err.max() < 0.03
+    with pytest.raises(ValueError, match="landmarks"):
+        sk.match(a, b, sk.MatchOptions(landmarks=((0, 10**6),)))

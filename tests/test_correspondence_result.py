@@ -82,7 +82,8 @@ def test_landmarks_are_spread_and_written(sphere, tmp_path):
     assert d[~np.eye(12, dtype=bool)].min() > 1.0
     save_landmarks(lm, tmp_path / "lm.csv")
     save_landmarks(lm, tmp_path / "lm.npz")
-    rows = list(csv.DictReader(open(tmp_path / "lm.csv")))
+    with open(tmp_path / "lm.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
     assert len(rows) == 12 and int(rows[3]["target_vertex"]) == lm["target_index"][3]
     assert float(rows[0]["source_x"]) == pytest.approx(lm["source_xyz"][0, 0], abs=1e-6)
     with np.load(tmp_path / "lm.npz", allow_pickle=False) as data:
@@ -106,7 +107,7 @@ def test_geodesic_error_matches_great_circles():
 
 
 def test_error_curve_and_identity_quality(sphere):
-    th, frac = error_curve(np.array([0.0, 0.1, 0.3]), thresholds=[0.0, 0.1, 0.2, 0.5])
+    _th, frac = error_curve(np.array([0.0, 0.1, 0.3]), thresholds=[0.0, 0.1, 0.2, 0.5])
     assert frac.tolist() == [1 / 3, 2 / 3, 2 / 3, 1.0]
     ident = np.arange(sphere.n_vertices)
     corr = sk.Correspondence(ident, ident)

@@ -8,7 +8,7 @@ from .options import MatchOptions
 from .result import Correspondence, save_landmarks
 from .solver import match
 
-__all__ = ["Correspondence", "MatchOptions", "match", "save_landmarks", "map_quality", "geodesic_error"]
+__all__ = ["Correspondence", "MatchOptions", "geodesic_error", "map_quality", "match", "save_landmarks"]
 
 
 def __getattr__(name: str):

@@ -39,7 +39,7 @@ def principal_frame(points: np.ndarray, weights: np.ndarray) -> np.ndarray:
     """
     w = weights / weights.sum()
     cov = (points * w[:, None]).T @ points
-    vals, vecs = np.linalg.eigh(cov)
+    _vals, vecs = np.linalg.eigh(cov)
     vecs = vecs[:, ::-1]
     if np.linalg.det(vecs) < 0:
         vecs[:, 2] *= -1

@@ -25,7 +25,7 @@ class SpectralShape:
     mass: np.ndarray
 
     @classmethod
-    def from_basis(cls, s: Surface, basis: Eigenbasis) -> "SpectralShape":
+    def from_basis(cls, s: Surface, basis: Eigenbasis) -> SpectralShape:
         area = float(basis.mass.sum())
         return cls(s, np.asarray(basis.vectors) * np.sqrt(area), np.asarray(basis.values) * area,
                    np.asarray(basis.mass) / area)

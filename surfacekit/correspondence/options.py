@@ -48,8 +48,9 @@ class MatchOptions:
     scaling : bool, default False
         Let the pre-alignment rescale beyond the unit-area normalisation.
     landmarks : tuple of (source_vertex, target_vertex) pairs, default ()
-        Known corresponding vertices; used as descriptors (heat diffusion from
-        each landmark) and to fix the pose when there are at least 3.
+        Known corresponding vertices.  With at least 3, their Kabsch pose is tried
+        first; with any, the distance between mapped and given partners is added
+        to the energy that picks the winning candidate.
     """
 
     n_eigen: int = 60
@@ -69,7 +70,7 @@ class MatchOptions:
     scaling: bool = False
     landmarks: tuple = ()
 
-    def validate(self) -> "MatchOptions":
+    def validate(self) -> MatchOptions:
         if self.n_eigen < 4:
             raise ValueError(f"n_eigen must be >= 4, got {self.n_eigen}")
         if self.n_samples < 50:

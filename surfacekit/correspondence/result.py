@@ -153,13 +153,12 @@ class Correspondence:
         for name in ("functional_map", "confidence", "source_confidence"):
             if getattr(self, name) is not None:
                 arrays[name] = getattr(self, name)
-        with atomic_path(path, suffix=".npz") as tmp:
-            with open(tmp, "wb") as fh:
-                np.savez_compressed(fh, **arrays)
+        with atomic_path(path, suffix=".npz") as tmp, open(tmp, "wb") as fh:
+            np.savez_compressed(fh, **arrays)
         return path
 
     @classmethod
-    def load(cls, path) -> "Correspondence":
+    def load(cls, path) -> Correspondence:
         """Read a file written by :meth:`save` (never unpickles)."""
         try:
             with np.load(path, allow_pickle=False) as data:
@@ -228,20 +227,18 @@ def save_landmarks(landmarks: dict, path) -> Path:
     if missing:
         raise ValueError(f"landmarks dict lacks {missing}")
     if suffix == ".npz":
-        with atomic_path(path, suffix=".npz") as tmp:
-            with open(tmp, "wb") as fh:
-                np.savez(fh, **{k: np.asarray(landmarks[k]) for k in keys})
+        with atomic_path(path, suffix=".npz") as tmp, open(tmp, "wb") as fh:
+            np.savez(fh, **{k: np.asarray(landmarks[k]) for k in keys})
         return path
     if suffix != ".csv":
         raise ValueError(f"landmark file must end in .csv or .npz, got {path.name!r}")
-    with atomic_path(path) as tmp:
-        with open(tmp, "w", newline="") as fh:
-            w = csv.writer(fh)
-            w.writerow(["index", "source_vertex", "target_vertex", "source_x", "source_y", "source_z",
-                        "target_x", "target_y", "target_z", "confidence"])
-            for r, (i, j, p, q, c) in enumerate(zip(*(landmarks[k] for k in keys))):
-                w.writerow([r, int(i), int(j), *(f"{x:.6f}" for x in p), *(f"{x:.6f}" for x in q),
-                            f"{float(c):.4f}"])
+    with atomic_path(path) as tmp, open(tmp, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["index", "source_vertex", "target_vertex", "source_x", "source_y", "source_z",
+                    "target_x", "target_y", "target_z", "confidence"])
+        for r, (i, j, p, q, c) in enumerate(zip(*(landmarks[k] for k in keys))):
+            w.writerow([r, int(i), int(j), *(f"{x:.6f}" for x in p), *(f"{x:.6f}" for x in q),
+                        f"{float(c):.4f}"])
     return path
 
 

@@ -43,6 +43,7 @@ class _Shape:
     tree: cKDTree           # over all normalised points
     spectral: SpectralShape
     desc: np.ndarray        # (n, d) unit-norm spectral descriptors
+    landmarks: np.ndarray   # (l, 2) known (source, target) vertex pairs
 
     @property
     def sp(self) -> np.ndarray:
@@ -59,12 +60,13 @@ class _Shape:
 
 def _prepare(s: Surface, opts: MatchOptions, seed: int) -> _Shape:
     basis = eigenbasis(s, opts.n_eigen)
-    pts, _, scale = ex.normalized_coordinates(s)
-    area = float(basis.mass.sum())
+    pts, _, _scale = ex.normalized_coordinates(s)
+    float(basis.mass.sum())
     samples = np.sort(farthest_points(pts, min(opts.n_samples, s.n_vertices), seed=seed))
     spectral = SpectralShape.from_basis(s, basis)
     return _Shape(s, pts, spectral.phi, spectral.values, samples, s.vertex_areas / s.area,
-                  cKDTree(pts), spectral, spectral_descriptors(spectral, basis))
+                  cKDTree(pts), spectral, spectral_descriptors(spectral, basis),
+                  _landmark_array(opts))
 
 
 def _check_inputs(source, target, options) -> MatchOptions:
@@ -82,13 +84,28 @@ def _check_inputs(source, target, options) -> MatchOptions:
     opts = options if options is not None else MatchOptions()
     if not isinstance(opts, MatchOptions):
         raise ValueError(f"options must be a MatchOptions, got {type(opts).__name__}")
-    return opts.validate()
+    opts.validate()
+    lm = _landmark_array(opts)
+    if len(lm) and (lm[:, 0].max() >= source.n_vertices or lm[:, 1].max() >= target.n_vertices):
+        raise ValueError("landmarks refer to vertices beyond the source or target")
+    return opts
+
+
+def _landmark_array(opts: MatchOptions) -> np.ndarray:
+    lm = np.asarray(opts.landmarks, dtype=np.int64).reshape(-1, 2)
+    if len(lm) and lm.min() < 0:
+        raise ValueError("landmarks must be non-negative vertex indices")
+    return lm
 
 
 def _coarse_poses(src: _Shape, tgt: _Shape, opts: MatchOptions, seed: int) -> list:
     """Rigid poses from every candidate rotation, each polished by a short ICP on few points."""
     rots = ex.candidate_rotations(src.points, src.weights, tgt.points, tgt.weights,
                                   opts.same_orientation)
+    lm = _landmark_array(opts)
+    if len(lm) >= 3:  # known pairs fix the pose: try it first
+        R, _, _ = ex.kabsch(src.points[lm[:, 0]], tgt.points[lm[:, 1]])
+        rots = np.concatenate([R[None], rots])
     few_s = src.sp[farthest_points(src.sp, 300, seed=seed)]
     few_t = tgt.sp[farthest_points(tgt.sp, 300, seed=seed)]
     tree = cKDTree(few_t)
@@ -108,7 +125,7 @@ def _stage(src: _Shape, tgt: _Shape, cand: dict, ks, opts: MatchOptions) -> dict
 
 def _extrinsic_start(src: _Shape, tgt: _Shape, pose, opts: MatchOptions) -> dict:
     """Initial candidate from a rigid pose: ICP on the samples, then closest points."""
-    R, t, s, rms = ex.icp(src.sp, tgt.sp, pose[0], iterations=opts.icp_iterations,
+    R, t, s, _rms = ex.icp(src.sp, tgt.sp, pose[0], iterations=opts.icp_iterations,
                           scaling=opts.scaling)
     return _deformed_start(src, tgt, "extrinsic", R, t, s, opts)
 
@@ -157,6 +174,10 @@ def _energy(src: _Shape, tgt: _Shape, cand: dict) -> dict:
     cover = 1.0 - 0.5 * (len(np.unique(t2s)) / len(s2t) + len(np.unique(s2t)) / len(t2s))
     rigid = cand["pose_residual"]
     total = rigid + 0.1 * (rt_t + rt_s) + 0.01 * desc
+    if len(src.landmarks):  # distance of the mapped landmarks from their partners
+        sample_of = cKDTree(tgt.sp).query(tgt.points[src.landmarks[:, 1]])[1]
+        total += float(np.mean(np.linalg.norm(
+            src.sp[t2s[sample_of]] - src.points[src.landmarks[:, 0]], axis=1)))
     return {"total": total, "rigid_residual": rigid, "descriptor": desc,
             "round_trip": 0.5 * (rt_t + rt_s), "coverage_gap": cover}
 
@@ -233,6 +254,9 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         best = int(np.argmin([e["total"] for e in energies]))
         timings["fine"] = time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
         t2s, s2t = _extend(src, tgt, candidates[best], opts)
+        # the reported functional map: from the final full-resolution map, M-weighted
+        # (C = Φ_tᵀ M_t Π Φ_s, Ovsjanikov et al. 2012), in the unit-area bases
+        C = tgt.phi.T @ (tgt.spectral.mass[:, None] * src.phi[t2s])
     timings["total"] = time.perf_counter() - t0
     info = {
         "route": candidates[best]["route"],
@@ -244,6 +268,6 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         "seed": int(seed),
     }
     return Correspondence(
-        source_to_target=s2t, target_to_source=t2s, functional_map=candidates[best]["C"],
+        source_to_target=s2t, target_to_source=t2s, functional_map=C,
         confidence=_confidence(tgt.points, s2t[t2s]),
         source_confidence=_confidence(src.points, t2s[s2t]), info=info)
