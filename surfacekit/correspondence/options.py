@@ -42,7 +42,7 @@ class MatchOptions:
     intrinsic_candidate : bool, default True
         Also build a candidate from descriptors alone (functional map with
         Laplacian, descriptor-commutativity and orientation terms).
-    intrinsic_k : int, default 30
+    intrinsic_k : int, default 24
         Size of the descriptor-based functional map.
     icp_iterations : int, default 20
     scaling : bool, default False
@@ -65,7 +65,7 @@ class MatchOptions:
     deform_k: int = 24
     bijective: bool = True
     intrinsic_candidate: bool = True
-    intrinsic_k: int = 30
+    intrinsic_k: int = 24
     icp_iterations: int = 20
     scaling: bool = False
     landmarks: tuple = ()

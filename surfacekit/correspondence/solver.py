@@ -16,7 +16,7 @@ from .fmap import SpectralShape, estimate_fmap, spectral_descriptors
 from .options import MatchOptions
 from .result import Correspondence
 from .sampling import farthest_points
-from .zoomout import nearest_rows, pointmaps_from_fmap, zoomout
+from .zoomout import nearest_rows, nearest_rows_local, pointmaps_from_fmap, zoomout
 
 log = logging.getLogger("surfacekit")
 
@@ -192,7 +192,10 @@ def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
     moved = s * src.points @ R.T + t + src.phi[:, :len(A)] @ A
     emb_t = np.hstack([tgt.phi[:, :k] @ C, w * tgt.points])
     emb_s = np.hstack([src.phi[:, :k], w * moved])
-    return nearest_rows(emb_t, emb_s), nearest_rows(emb_s, emb_t)
+    if w * np.std(tgt.points) < np.sqrt(k):  # coordinates too light to restrict the search
+        return nearest_rows(emb_t, emb_s), nearest_rows(emb_s, emb_t)
+    return (nearest_rows_local(emb_t, emb_s, tgt.points, moved),
+            nearest_rows_local(emb_s, emb_t, moved, tgt.points))
 
 
 def _confidence(points: np.ndarray, roundtrip: np.ndarray, width: float = 0.05) -> np.ndarray:
@@ -234,9 +237,9 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     opts = _check_inputs(source, target, options)
     t0 = time.perf_counter()
     timings = {}
-    src, tgt = _prepare(source, opts, seed), _prepare(target, opts, seed + 1)
-    timings["prepare"] = time.perf_counter() - t0
     with _blas_single_thread():
+        src, tgt = _prepare(source, opts, seed), _prepare(target, opts, seed + 1)
+        timings["prepare"] = time.perf_counter() - t0
         starts = [_extrinsic_start(src, tgt, pose, opts) for pose in _coarse_poses(src, tgt, opts, seed)]
         if opts.intrinsic_candidate:
             starts.append(_intrinsic_start(src, tgt, opts))

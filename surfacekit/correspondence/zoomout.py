@@ -33,6 +33,25 @@ def nearest_rows(query: np.ndarray, data: np.ndarray, *, chunk: int = 2048,
     return (idx, np.sqrt(np.maximum(dist, 0.0))) if return_distance else idx
 
 
+def nearest_rows_local(query: np.ndarray, data: np.ndarray, query_xyz: np.ndarray,
+                       data_xyz: np.ndarray, n_candidates: int = 16) -> np.ndarray:
+    """Nearest row of `data` for each row of `query`, searched among spatial neighbours only.
+
+    For each query, the `n_candidates` rows whose 3-D positions (`data_xyz` (p, 3))
+    are closest to the query's position (`query_xyz` (q, 3)) are compared in the
+    full embedding.  Exact whenever the true nearest row is among them, which holds
+    when the positions are aligned and weigh heavily in the embedding; O(q·c·d)
+    instead of O(q·p·d).  Returns (q,) int64.
+    """
+    c = min(n_candidates, len(data))
+    _, cand = cKDTree(data_xyz).query(query_xyz, k=c)
+    cand = cand.reshape(len(query), c)
+    data32 = np.asarray(data, dtype=np.float32)
+    dn = np.einsum("ij,ij->i", data32, data32)
+    d2 = dn[cand] - 2.0 * np.einsum("qcd,qd->qc", data32[cand], np.asarray(query, dtype=np.float32))
+    return cand[np.arange(len(query)), np.argmin(d2, axis=1)].astype(np.int64)
+
+
 def fmap_from_pointmap(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray,
                        s2t: np.ndarray | None = None) -> np.ndarray:
     """Functional map C (k_t, k_s) from point maps by least squares, ``Φ_t C ≈ Φ_s[t2s]``.
@@ -68,6 +87,11 @@ def pointmaps_from_fmap(C: np.ndarray, phi_t: np.ndarray, phi_s: np.ndarray,
     if extra_t is not None:
         emb_t = np.hstack([emb_t, extra_t])
         emb_s = np.hstack([emb_s, extra_s])
+        # heavy coordinates (spread >> spectral row norm ~sqrt(k)): search near in space only
+        if extra_t.shape[1] == 3 and np.std(extra_t) > np.sqrt(C.shape[0]):
+            t2s = nearest_rows_local(emb_t, emb_s, extra_t, extra_s)
+            s2t = nearest_rows_local(emb_s, emb_t, extra_s, extra_t) if both else None
+            return t2s, s2t
     t2s = nearest_rows(emb_t, emb_s)
     s2t = nearest_rows(emb_s, emb_t) if both else None
     return t2s, s2t
