@@ -13,6 +13,7 @@ import json
 import os
 import resource
 import socket
+import sys
 import time
 import traceback
 import zipfile
@@ -215,10 +216,28 @@ def read_finished(subject_dir, key: str) -> dict | None:
     return stored["values"] if stored.get("key") == key else None
 
 
+def peak_rss_mb() -> float:
+    """Peak resident memory of this process (MiB).
+
+    Linux: ``VmHWM`` of /proc/self/status (proc(5)), the high-water mark of the
+    current address space.  ``getrusage``'s ``ru_maxrss`` is not used there
+    because it survives fork+exec and so reports the parent's size in spawned
+    workers (getrusage(2): "preserved across an execve").  Elsewhere ru_maxrss
+    (KiB on Linux/BSD, bytes on macOS).
+    """
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return peak / (1024.0 * 1024.0 if sys.platform == "darwin" else 1024.0)
+
+
 def worker_info() -> dict:
-    # ru_maxrss is in KiB on Linux (getrusage(2) man page)
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-    return {"pid": os.getpid(), "host": socket.gethostname(), "peak_rss_mb": peak}
+    return {"pid": os.getpid(), "host": socket.gethostname(), "peak_rss_mb": peak_rss_mb()}
 
 
 def run_subject(task: SubjectTask) -> dict:
