@@ -138,12 +138,14 @@ def main() -> None:
         peak = max(max(r.peak_rss_mb.values()) for r in pool_runs)
         budget = args.hours * 3600.0
         n_workers = math.ceil(args.cohort_size * per_subject / budget)
+        machines = math.ceil(n_workers / 16)
+        cores = math.ceil(n_workers / machines)
         print(f"README: at {per_subject:.0f} CPU-seconds and {peak:.0f} MiB peak per "
               f"{args.vertices}-vertex subject (one core per worker, measured here), "
               f"{args.cohort_size:,} subjects finish in "
               f"{args.hours:.0f} hours on {n_workers} single-threaded workers "
-              f"(e.g. {math.ceil(n_workers / 16)} machine(s) of 16 cores with "
-              f"{math.ceil(16 * peak / 1024 * 1.25)} GB each, incl. 25% headroom).")
+              f"(e.g. {machines} machine(s) of {cores} cores with at least "
+              f"{math.ceil(cores * peak / 1024 * 1.25)} GB of memory each, 25% headroom).")
     finally:
         shutil.rmtree(root, ignore_errors=True)
 
