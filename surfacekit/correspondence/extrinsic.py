@@ -180,3 +180,24 @@ def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndar
             rhs = B.T @ (tgt[j] - points) + B[i].T @ (tgt - points[i])
             A = np.linalg.solve(lhs, rhs)
     return A
+
+
+def affine_icp(src: np.ndarray, tgt: np.ndarray, *, iterations: int = 10,
+               tgt_tree: cKDTree | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Affine ICP from the identity: ``src @ A.T + b`` fitted to symmetric closest points.
+
+    Besl & McKay's ICP (1992) with a general affine model (least squares per
+    iteration), so anisotropic growth is absorbed before the non-rigid step.
+    src (p, 3) rigidly aligned points, tgt (q, 3).  Returns ``(A (3, 3), b (3,))``.
+    """
+    tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
+    A, b = np.eye(3), np.zeros(3)
+    for _ in range(iterations):
+        moved = src @ A.T + b
+        _, j = tree_t.query(moved)
+        _, i = cKDTree(moved).query(tgt)
+        X = np.hstack([np.concatenate([src, src[i]]), np.ones((len(src) + len(tgt), 1))])
+        Y = np.concatenate([tgt[j], tgt])
+        sol = np.linalg.lstsq(X, Y, rcond=None)[0]
+        A, b = sol[:3].T, sol[3]
+    return A, b

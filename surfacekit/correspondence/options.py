@@ -37,6 +37,9 @@ class MatchOptions:
     deform_k : int, default 24
         Eigenfunctions in the smooth non-rigid ICP that deforms the aligned source
         onto the target before refinement (0 = rigid pose only).
+    affine : bool, default True
+        Fit an affine map (affine ICP) after the rigid pose and before the smooth
+        deformation, absorbing anisotropic growth.
     bijective : bool, default True
         Estimate each functional map from both map directions.
     intrinsic_candidate : bool, default True
@@ -45,8 +48,10 @@ class MatchOptions:
     intrinsic_k : int, default 24
         Size of the descriptor-based functional map.
     icp_iterations : int, default 20
+        Iterations of the rigid ICP that polishes each candidate pose.
     scaling : bool, default False
-        Let the pre-alignment rescale beyond the unit-area normalisation.
+        Let the rigid pre-alignment also rescale (a similarity, Umeyama 1991) beyond
+        the normalisation of both shapes to a common RMS radius.
     landmarks : tuple of (source_vertex, target_vertex) pairs, default ()
         Known corresponding vertices.  With at least 3, their Kabsch pose is tried
         first; with any, the distance between mapped and given partners is added
@@ -63,6 +68,7 @@ class MatchOptions:
     zoomout_mid: int = 20
     coordinate_weight: float = 100.0
     deform_k: int = 24
+    affine: bool = True
     bijective: bool = True
     intrinsic_candidate: bool = True
     intrinsic_k: int = 24

@@ -32,10 +32,10 @@ def _blas_single_thread():
 
 @dataclass
 class _Shape:
-    """Everything the solver needs from one surface, in unit-area units."""
+    """Everything the solver needs from one surface, normalised in size."""
 
     surface: Surface
-    points: np.ndarray      # (n, 3) centred, unit-area coordinates
+    points: np.ndarray      # (n, 3) centred coordinates, unit size (see ex.normalized_coordinates)
     phi: np.ndarray         # (n, k) eigenvectors scaled to unit area
     values: np.ndarray      # (k,) eigenvalues scaled to unit area
     samples: np.ndarray     # (p,) well-spread vertex indices
@@ -131,15 +131,18 @@ def _extrinsic_start(src: _Shape, tgt: _Shape, pose, opts: MatchOptions) -> dict
 
 
 def _deformed_start(src: _Shape, tgt: _Shape, route: str, R, t, s, opts: MatchOptions) -> dict:
-    """Candidate start from a rigid pose: smooth non-rigid ICP, then closest points."""
+    """Candidate start from a rigid pose: affine ICP, smooth non-rigid ICP, then closest points."""
     moved = s * src.sp @ R.T + t
+    affine = ex.affine_icp(moved, tgt.sp) if opts.affine else (np.eye(3), np.zeros(3))
+    moved = moved @ affine[0].T + affine[1]
     A = np.zeros((0, 3))
     if opts.deform_k > 0:
         sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
         A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes)
     coords = moved + src.sphi[:, :len(A)] @ A
     return {"route": route, "t2s": nearest_rows(tgt.sp, coords), "coords": coords,
-            "pose": (R, t, s), "displacement": A, "pose_residual": _pose_residual(src, tgt, R, t, s)}
+            "pose": (R, t, s), "affine": affine, "displacement": A,
+            "pose_residual": _pose_residual(src, tgt, R, t, s)}
 
 
 def _pose_residual(src: _Shape, tgt: _Shape, R, t, s) -> float:
@@ -189,7 +192,8 @@ def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
     w = opts.coordinate_weight
     R, t, s = cand["pose"]
     A = cand["displacement"]
-    moved = s * src.points @ R.T + t + src.phi[:, :len(A)] @ A
+    Aff, b = cand["affine"]
+    moved = (s * src.points @ R.T + t) @ Aff.T + b + src.phi[:, :len(A)] @ A
     emb_t = np.hstack([tgt.phi[:, :k] @ C, w * tgt.points])
     emb_s = np.hstack([src.phi[:, :k], w * moved])
     if w * np.std(tgt.points) < np.sqrt(k):  # coordinates too light to restrict the search
@@ -199,7 +203,7 @@ def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
 
 
 def _confidence(points: np.ndarray, roundtrip: np.ndarray, width: float = 0.05) -> np.ndarray:
-    """exp(-(d/width)²) of the round-trip distance d (unit-area units) per vertex, in [0, 1]."""
+    """exp(-(d/width)²) of the round-trip distance d (unit-size units) per vertex, in [0, 1]."""
     d = np.linalg.norm(points[roundtrip] - points, axis=1)
     return np.exp(-((d / width) ** 2))
 
@@ -208,15 +212,18 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
           seed: int = 0) -> Correspondence:
     """Dense vertex-to-vertex correspondence between two surfaces of the same organ.
 
-    Candidates come from both routes and are each refined: extrinsic (rigid poses
-    from all proper principal-axis pairings and the identity, polished by ICP,
-    Besl & McKay 1992) and intrinsic (a functional map from descriptors,
-    Ovsjanikov et al., SIGGRAPH 2012, with descriptor-commutativity operators,
-    Nogneng & Ovsjanikov, Eurographics 2017, and an orientation term, Ren et al.,
-    SIGGRAPH Asia 2018).  Each is refined by ZoomOut (Melzi et al., SIGGRAPH Asia
-    2019) on well-spread vertex samples with aligned coordinates as extra
-    signals; the candidate with the lowest unsupervised energy (coordinate
-    agreement, round-trip error, coverage) is extended to all vertices.
+    Candidates come from both routes: extrinsic (rigid poses from every proper
+    pairing of the principal axes and the identity, polished by ICP, Besl & McKay
+    1992) and intrinsic (a functional map from WKS/HKS descriptors, Ovsjanikov et
+    al., SIGGRAPH 2012, with descriptor-commutativity operators, Nogneng &
+    Ovsjanikov, Eurographics 2017, and an orientation term, Ren et al., SIGGRAPH
+    Asia 2018, whose pose is then fitted to its point map).  Each candidate's
+    source is deformed smoothly onto the target (ICP with a displacement in the low
+    Laplace–Beltrami eigenfunctions), then refined by ZoomOut (Melzi et al.,
+    SIGGRAPH Asia 2019) on well-spread vertex samples, with the deformed
+    coordinates appended to the spectral embeddings.  The candidate with the
+    lowest unsupervised energy (robust pose residual, round-trip error,
+    descriptor disagreement, landmark distance) is extended to all vertices.
 
     Parameters
     ----------
