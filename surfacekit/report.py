@@ -33,8 +33,9 @@ import numpy as np
 from .io import atomic_path
 from .surface import Surface
 
-CAUTION = ("Research use only: these results come from synthetic or research data processing and "
-           "are not for diagnosis or treatment decisions.")
+CAUTION = ("Research use only: these results come from research data processing and are not "
+           "for diagnosis or treatment decisions. Any clinical use must follow local regulations "
+           "and the judgement of qualified professionals.")
 
 # Colour scales (our own choices).  Diverging: blue (shrinking / inward) to red
 # (growing / outward) through a warm white at exactly zero.

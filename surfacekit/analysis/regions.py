@@ -6,7 +6,8 @@ from pathlib import Path
 
 import numpy as np
 
-RESEARCH_NOTE = "For research use only; not for diagnosis or treatment decisions."
+RESEARCH_NOTE = ("For research use only; not for diagnosis or treatment decisions. Clinical use "
+                 "must follow local regulations and qualified professional judgement.")
 
 COLUMNS = ("label", "name", "n_vertices", "area_mm2", "mean_normal_displacement_mm",
            "median_normal_displacement_mm", "p5_normal_displacement_mm",
