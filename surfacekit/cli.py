@@ -214,8 +214,10 @@ def main(argv: Sequence[str] | None = None) -> int:
                 warnings.showwarning = _one_line_warning
             summary = args.run(ctx)
         ctx.outputs.commit()
-        _print_summary(ctx, summary or {})
-        return EXIT_OK
+        summary = dict(summary or {})
+        code = int(summary.pop("exit_code", EXIT_OK))  # e.g. cohort runs with failed subjects
+        _print_summary(ctx, summary)
+        return code
     except (InputError, SurfaceError, ValueError, FileNotFoundError, IsADirectoryError,
             NotADirectoryError) as exc:
         _cleanup(ctx)

@@ -6,6 +6,9 @@ import sys
 from pathlib import Path
 
 from .cli import Context, InputError
+
+#: exit status of `cohort` when some (not all) subjects failed; their rows hold the errors
+EXIT_SOME_FAILED = 3
 from .cli_util import existing
 
 
@@ -19,9 +22,9 @@ def _cohort_args(p):
                    help="resample every surface to about this many vertices (default 3000)")
     p.add_argument("--permutations", type=int, default=2000,
                    help="permutations of the vertex-wise group test (default 2000)")
-    p.add_argument("--resume", action="store_true",
-                   help="work inside an existing output folder, reusing finished subjects "
-                        "(otherwise the folder is written only when the whole run succeeded)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on a Dask cluster, e.g. tcp://10.0.0.5:8786 (needs the 'cluster' extra; "
+                        "workers must see the inputs and the output folder at the same paths)")
 
 
 def check_manifest(path: Path) -> None:
@@ -48,19 +51,27 @@ def _cohort(ctx: Context) -> dict:
     check_manifest(manifest)
     if a.template:
         existing(a.template, "template")
-    if a.resume:  # the engine's own per-subject cache makes partial runs safe to continue
-        out = Path(a.output)
-        out.mkdir(parents=True, exist_ok=True)
-    else:
-        out = ctx.outputs.claim(a.output, directory=True)
-    result = sk.run_cohort(manifest, out, a.template, workers=a.workers,
+    # The cohort folder is written in place, subject by subject (each file atomically,
+    # a completion marker last), so an interrupted run resumes where it stopped and a
+    # re-run skips finished subjects; --force recomputes them all.
+    out = Path(a.output)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"output {out} exists and is a file")
+    result = sk.run_cohort(manifest, out, a.template, workers=a.workers, scheduler=a.scheduler,
                            target_vertices=a.target_vertices, n_permutations=a.permutations,
-                           seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty())
+                           seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty(),
+                           force=a.force)
     if result.n_failed == result.n_subjects:
         raise InputError(f"every subject failed; first: {result.failed[0][0]}: {result.failed[0][1]}")
-    ctx.say(result.summary().replace(str(out), str(a.output)))  # staged -> final folder name
-    return {"manifest": manifest.name, "output": str(a.output), "subjects": result.n_subjects,
-            "failed": result.n_failed, "tables": {k: Path(v).name for k, v in result.tables.items()}}
+    ctx.say(result.summary())
+    summary = {"manifest": manifest.name, "output": str(out), "subjects": result.n_subjects,
+               "failed": result.n_failed, "computed": result.n_computed, "cached": result.n_cached,
+               "tables": {k: Path(v).name for k, v in result.tables.items()}}
+    if result.n_failed:
+        print(f"surfacekit: {result.n_failed} of {result.n_subjects} subjects failed "
+              f"(see {out / 'cohort_summary.csv'})", file=sys.stderr)
+        summary["exit_code"] = EXIT_SOME_FAILED
+    return summary
 
 
 # ---------------------------------------------------------------- demo

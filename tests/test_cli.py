@@ -247,3 +247,27 @@ def test_change_outputs_and_reproducible_tables(tmp_path, meshes, capsys):
     umask = os.umask(0)
     os.umask(umask)
     assert os.stat(tmp_path / "c1").st_mode & 0o777 == 0o777 & ~umask  # not mkdtemp's 0700
+
+
+def test_cohort_partial_failure_exit_code_and_resume(tmp_path, capsys):
+    """A corrupt subject: exit 3, one line naming the count; a re-run reuses finished subjects."""
+    import surfacekit as sk
+
+    base, _ = sk.synthetic.organ_surface("kidney", 900, seed=3)
+    sk.save(base, tmp_path / "template.ply")
+    for i in range(2):
+        moved = sk.Surface(base.vertices * (1.0 + 0.02 * i) + i, base.faces)
+        sk.save(moved, tmp_path / f"s{i}.ply")
+    (tmp_path / "broken.ply").write_bytes(b"ply\nformat ascii 1.0\nelement vertex 99\n")
+    (tmp_path / "cohort.csv").write_text(
+        "subject,path,label,group,role,age,sex\n"
+        "tpl,template.ply,,,template,,\n"
+        "a,s0.ply,,g1,subject,,\nb,s1.ply,,g2,subject,,\nc,broken.ply,,g2,subject,,\n")
+    args = ["cohort", tmp_path / "cohort.csv", "-o", tmp_path / "out", "--permutations", "50",
+            "--target-vertices", "800", "--quiet"]
+    code, _, err = run(args, capsys)
+    assert code == 3 and "1 of 3 subjects failed" in err
+    rows = (tmp_path / "out" / "cohort_summary.csv").read_text()
+    assert "broken.ply" in rows or "failed" in rows
+    code, out, _ = run(args + ["--json"], capsys)
+    assert code == 3 and json.loads(out)["cached"] == 2
