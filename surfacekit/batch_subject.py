@@ -16,14 +16,13 @@ import socket
 import sys
 import time
 import traceback
-import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from .batch_manifest import VOLUME_SUFFIXES
-from .io import atomic_path
+from .io import atomic_path, save_fields
 
 STAGES = ("load", "prepare", "descriptors", "match", "change", "write")
 MARKER_SUFFIX = ".done"
@@ -44,27 +43,9 @@ class SubjectTask:
     options: dict
 
 
-def zip_member(zf: zipfile.ZipFile, name: str):
-    """A writable ``<name>.npy`` member with a fixed time stamp (reproducible bytes)."""
-    info = zipfile.ZipInfo(f"{name}.npy", date_time=(1980, 1, 1, 0, 0, 0))
-    info.compress_type = zipfile.ZIP_DEFLATED
-    info.external_attr = 0o644 << 16
-    return zf.open(info, "w", force_zip64=True)
-
-
 def save_npz_deterministic(path, arrays: dict) -> Path:
-    """Write arrays to an NPZ (numpy's ``.npy`` members in a deflated zip) atomically.
-
-    Unlike ``numpy.savez_compressed`` the zip members carry a fixed time stamp, so
-    equal arrays give byte-identical files whatever the engine or the time of the run.
-    """
-    path = Path(path)
-    with atomic_path(path, suffix=".npz") as tmp, \
-            zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-        for name, value in arrays.items():
-            with zip_member(zf, name) as fh:
-                np.lib.format.write_array(fh, np.asarray(value), allow_pickle=False)
-    return path
+    """Arrays to an NPZ atomically, with byte-reproducible zip members."""
+    return save_fields(path, **arrays)
 
 
 def write_json(path, payload: dict) -> None:

@@ -17,8 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from .batch_manifest import Manifest, format_value
-from .batch_subject import zip_member
-from .io import atomic_path
+from .io import atomic_path, npz_member
 
 SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "volume_change_ml",
                   "mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
@@ -67,12 +66,12 @@ def write_fields_matrix(path, manifest: Manifest, rows: list[dict], subject_dirs
     with atomic_path(Path(path), suffix=".npz") as tmp, \
             zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
         for name, arr in names.items():
-            with zip_member(zf, name) as fh:
+            with npz_member(zf, name) as fh:
                 np.lib.format.write_array(fh, arr, allow_pickle=False)
         for name, shape in columns.items():
             header = {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float64)),
                       "fortran_order": False, "shape": (s, *shape)}
-            with zip_member(zf, name) as fh:
+            with npz_member(zf, name) as fh:
                 np.lib.format.write_array_header_1_0(fh, header)
                 for good, sdir in zip(ok, subject_dirs):
                     row = np.full(shape, np.nan)

@@ -16,7 +16,6 @@ import sys
 import tempfile
 import traceback
 import warnings
-import zipfile
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -34,24 +33,6 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message: str):
         raise InputError(f"{self.prog}: {message} (see '{self.prog} --help')")
-
-
-def canonical_npz(path: Path) -> None:
-    """Rewrite an NPZ with fixed zip timestamps, so equal arrays give equal bytes.
-
-    ``numpy.savez`` stamps each member with the current time; reproducible
-    outputs need a constant stamp (1980-01-01, the zip epoch).
-    """
-    with zipfile.ZipFile(path) as src:
-        members = [(info, src.read(info.filename)) for info in src.infolist()]
-    tmp = path.with_name(path.name + ".canon")
-    with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as dst:
-        for info, data in members:
-            fixed = zipfile.ZipInfo(info.filename, date_time=(1980, 1, 1, 0, 0, 0))
-            fixed.compress_type = zipfile.ZIP_DEFLATED
-            fixed.external_attr = 0o644 << 16
-            dst.writestr(fixed, data)
-    os.replace(tmp, path)
 
 
 class Outputs:
@@ -82,10 +63,6 @@ class Outputs:
 
     def commit(self) -> None:
         for staged, final, directory in self._staged:
-            files = staged.rglob("*.npz") if directory else [staged]
-            for f in files:
-                if f.suffix == ".npz" and f.is_file():
-                    canonical_npz(f)
             if not directory:
                 if not staged.exists():
                     raise RuntimeError(f"the command did not write {final}")

@@ -360,7 +360,7 @@ def save(surface: Surface, path, fields: dict | None = None, *, binary: bool = T
         elif suffix == ".gii":
             fh.write(_gifti_bytes(surface, fields))
         elif suffix == ".npz":
-            np.savez_compressed(fh, vertices=v, faces=f, **{f"fields/{k}": a for k, a in fields.items()})
+            write_npz(fh, {"vertices": v, "faces": f, **{f"fields/{k}": a for k, a in fields.items()}})
         elif suffix == ".stl":
             write_stl(fh, v, f, binary=binary, normals=surface.face_normals)
         elif suffix == ".obj":
@@ -376,11 +376,32 @@ def save(surface: Surface, path, fields: dict | None = None, *, binary: bool = T
     return path
 
 
+def npz_member(zf, name: str):
+    """A writable ``<name>.npy`` zip member with a fixed time stamp (reproducible bytes)."""
+    info = zipfile.ZipInfo(f"{name}.npy", date_time=(1980, 1, 1, 0, 0, 0))
+    info.compress_type = zipfile.ZIP_DEFLATED
+    info.external_attr = 0o644 << 16
+    return zf.open(info, "w", force_zip64=True)
+
+
+def write_npz(fh, arrays: dict) -> None:
+    """Write arrays as a compressed NPZ to a binary file object, reproducibly.
+
+    Unlike ``numpy.savez_compressed`` the zip members carry a fixed time stamp (the
+    zip epoch), so equal arrays give byte-identical files whenever they are written;
+    object arrays are refused (``allow_pickle=False``).
+    """
+    with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        for name, value in arrays.items():
+            with npz_member(zf, name) as member:
+                np.lib.format.write_array(member, np.asarray(value), allow_pickle=False)
+
+
 def save_fields(path, **arrays) -> Path:
-    """Write named arrays to an NPZ file atomically."""
+    """Write named arrays to an NPZ file atomically and reproducibly (see :func:`write_npz`)."""
     path = Path(path)
     with atomic_path(path, suffix=".npz") as tmp, open(tmp, "wb") as fh:
-        np.savez_compressed(fh, **{k: np.asarray(v) for k, v in arrays.items()})
+        write_npz(fh, arrays)
     return path
 
 

@@ -569,3 +569,20 @@ def test_save_fields_load_fields(tmp_path):
     path = sk.save_fields(tmp_path / "arrays.npz", **arrays)
     got = sk.load_fields(path)
     assert set(got) == {"a", "b"} and np.array_equal(got["b"], arrays["b"])
+
+
+def test_npz_outputs_are_byte_reproducible(tmp_path):
+    """Equal arrays give equal NPZ bytes at different times (fixed zip time stamps), and
+    numpy reads them back exactly (numpy's NPZ format: .npy members in a zip)."""
+    import time
+
+    a = {"x": np.arange(10.0), "labels": np.arange(5, dtype=np.int32)}
+    sk.save_fields(tmp_path / "a.npz", **a)
+    time.sleep(2.1)  # zip time stamps have 2-second resolution
+    sk.save_fields(tmp_path / "b.npz", **a)
+    assert (tmp_path / "a.npz").read_bytes() == (tmp_path / "b.npz").read_bytes()
+    with np.load(tmp_path / "a.npz", allow_pickle=False) as back:
+        assert np.array_equal(back["x"], a["x"]) and back["labels"].dtype == np.int32
+    with pytest.raises(ValueError):
+        sk.save_fields(tmp_path / "c.npz", bad=np.array([{"a": 1}], dtype=object))
+    assert not (tmp_path / "c.npz").exists()

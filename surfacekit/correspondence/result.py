@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import scipy.sparse as sp
 
-from ..io import atomic_path
+from ..io import atomic_path, save_fields
 from ..surface import Surface
 
 _FORMAT_TAG = "surfacekit.correspondence/1"
@@ -153,9 +153,7 @@ class Correspondence:
         for name in ("functional_map", "confidence", "source_confidence"):
             if getattr(self, name) is not None:
                 arrays[name] = getattr(self, name)
-        with atomic_path(path, suffix=".npz") as tmp, open(tmp, "wb") as fh:
-            np.savez_compressed(fh, **arrays)
-        return path
+        return save_fields(path, **arrays)
 
     @classmethod
     def load(cls, path) -> Correspondence:
@@ -227,9 +225,7 @@ def save_landmarks(landmarks: dict, path) -> Path:
     if missing:
         raise ValueError(f"landmarks dict lacks {missing}")
     if suffix == ".npz":
-        with atomic_path(path, suffix=".npz") as tmp, open(tmp, "wb") as fh:
-            np.savez(fh, **{k: np.asarray(landmarks[k]) for k in keys})
-        return path
+        return save_fields(path, **{k: np.asarray(landmarks[k]) for k in keys})
     if suffix != ".csv":
         raise ValueError(f"landmark file must end in .csv or .npz, got {path.name!r}")
     with atomic_path(path) as tmp, open(tmp, "w", newline="") as fh:
