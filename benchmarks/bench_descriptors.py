@@ -21,21 +21,11 @@ fairer figure then.
 from __future__ import annotations
 
 import argparse
-import time
 
 import numpy as np
+from _timing import Timer  # benchmarks/ is on sys.path when run as a script
 
 import surfacekit as sk
-
-
-class Timer:
-    def __enter__(self):
-        self.wall, self.cpu = time.perf_counter(), time.process_time()
-        return self
-
-    def __exit__(self, *exc):
-        self.wall = time.perf_counter() - self.wall
-        self.cpu = time.process_time() - self.cpu
 
 
 def row(name: str, t: Timer, baseline: Timer | None = None, note: str = "") -> None:

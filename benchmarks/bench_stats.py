@@ -12,27 +12,12 @@ Timings on a shared machine are inflated by other processes; ratios are more sta
 from __future__ import annotations
 
 import argparse
-import time
 
 import numpy as np
+from _timing import Timer  # benchmarks/ is on sys.path when run as a script
 from scipy import stats
 
 import surfacekit as sk
-
-
-class Timer:
-    """Wall-clock and process CPU seconds of a block (CPU time is steadier on a busy machine)."""
-
-    def __enter__(self):
-        self.wall, self.cpu = time.perf_counter(), time.process_time()
-        return self
-
-    def __exit__(self, *exc):
-        self.wall = time.perf_counter() - self.wall
-        self.cpu = time.process_time() - self.cpu
-
-    def __str__(self) -> str:
-        return f"{self.wall:8.2f} s wall, {self.cpu:8.2f} s CPU"
 
 
 def baseline_loop(a: np.ndarray, b: np.ndarray, n_perm: int, seed: int = 0) -> Timer:
