@@ -83,7 +83,7 @@ def _check_inputs(source, target, options) -> MatchOptions:
             raise SurfaceError(f"{name} has zero area")
     opts = options if options is not None else MatchOptions()
     if not isinstance(opts, MatchOptions):
-        raise ValueError(f"options must be a MatchOptions, got {type(opts).__name__}")
+        raise ValueError(f"options must be a MatchOptions, got {type(opts).__name__}")  # noqa: TRY004
     opts.validate()
     lm = _landmark_array(opts)
     if len(lm) and (lm[:, 0].max() >= source.n_vertices or lm[:, 1].max() >= target.n_vertices):
