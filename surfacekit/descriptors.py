@@ -224,9 +224,7 @@ def shape_dna(s: Surface, k: int = 50, basis: Eigenbasis | None = None) -> np.nd
     if int(k) < 1:
         raise ValueError(f"k must be >= 1, got {k}")
     n_zero = max(1, s.n_components)
-    # a few extra pairs: Lanczos solvers can drop a copy of a repeated eigenvalue at the
-    # end of the requested range (seen on a rotated icosphere with k = 16)
-    b = _basis(s, basis, int(k) + n_zero + max(5, int(k) // 10))
+    b = _basis(s, basis, int(k) + n_zero)
     values = b.values[_nonzero(b.values)]
     if values.size < int(k):
         raise ValueError(f"basis gives {values.size} non-zero eigenvalues, {k} requested")
