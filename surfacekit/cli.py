@@ -22,6 +22,8 @@ from pathlib import Path
 from .surface import SurfaceError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+#: `cohort` when some (not all) subjects failed; their rows in the summary hold the errors
+EXIT_SOME_FAILED = 3
 
 
 class InputError(ValueError):

@@ -5,10 +5,7 @@ import csv
 import sys
 from pathlib import Path
 
-from .cli import Context, InputError
-
-#: exit status of `cohort` when some (not all) subjects failed; their rows hold the errors
-EXIT_SOME_FAILED = 3
+from .cli import EXIT_SOME_FAILED, Context, InputError
 from .cli_util import existing
 
 
