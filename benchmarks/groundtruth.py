@@ -136,19 +136,24 @@ DEFORMATIONS = {
 
 
 def make_pair(kind: str, deformation: str, *, n_source: int = 3000, n_target: int = 3600,
-              seed: int = 0, rotate: bool = True) -> Pair:
-    """One ground-truth pair; the target is deformed, randomly rotated and translated."""
+              seed: int = 0, rotate: bool = True, rotation_seed: int | None = None) -> Pair:
+    """One ground-truth pair; the target is deformed, randomly rotated and translated.
+
+    The rotation and translation come from `rotation_seed` (default: `seed`), so the
+    same pair can be posed in many ways.
+    """
     src, sp_s = sk.synthetic.organ_surface(kind, n_source, seed=2 * seed + 1, jitter=0.3)
     deform = DEFORMATIONS[deformation](seed) if deformation != "none" else None
     if deformation == "bend":  # the same bending angle whatever the organ's length
         deform = bending(BEND_ANGLE / LENGTHS[kind])
     tgt, sp_t = sk.synthetic.organ_surface(kind, n_target, seed=2 * seed + 2, jitter=0.3, deform=deform)
     if rotate:
-        R = sk.synthetic.random_rotation(seed)
-        shift = np.random.default_rng(seed).normal(0, 50.0, 3)
+        rs = seed if rotation_seed is None else rotation_seed
+        R = sk.synthetic.random_rotation(rs)
+        shift = np.random.default_rng(rs).normal(0, 50.0, 3)
         tgt = sk.Surface(tgt.vertices @ R.T + shift, tgt.faces, metadata=dict(tgt.metadata))
     return Pair(
-        name=f"{kind}/{deformation}/seed{seed}",
+        name=f"{kind}/{deformation}/seed{seed}" + ("" if rotation_seed is None else f"/pose{rotation_seed}"),
         source=src, target=tgt,
         target_truth=locate_on_sphere_mesh(sp_s, src.faces, sp_t),
         source_truth=locate_on_sphere_mesh(sp_t, tgt.faces, sp_s),

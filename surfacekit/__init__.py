@@ -41,7 +41,8 @@ _LAZY = {
     # correspondence
     "match": "correspondence", "Correspondence": "correspondence",
     "MatchOptions": "correspondence", "map_quality": "correspondence",
-    "geodesic_error": "correspondence",
+    "geodesic_error": "correspondence", "AmbiguousMatchWarning": "correspondence",
+    "load_landmarks": "correspondence", "save_landmarks": "correspondence",
     # analysis
     "rigid_transform": "analysis", "similarity_transform": "analysis",
     "measure_change": "analysis", "ChangeReport": "analysis",
@@ -59,6 +60,7 @@ _SUBMODULES = {"synthetic", "io", "operators", "descriptors", "geodesics", "prep
                "segmentation", "correspondence", "analysis", "batch", "report", "cli"}
 
 __all__ = [
+    "AmbiguousMatchWarning",
     "ChangeReport",
     "Correspondence",
     "EigenSolverWarning",
@@ -88,6 +90,7 @@ __all__ = [
     "laplacian",
     "load",
     "load_fields",
+    "load_landmarks",
     "map_quality",
     "mass_matrix",
     "match",
@@ -101,6 +104,7 @@ __all__ = [
     "run_cohort",
     "save",
     "save_fields",
+    "save_landmarks",
     "scale_invariant_hks",
     "shape_dna",
     "shape_dna_distance",

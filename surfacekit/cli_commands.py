@@ -139,12 +139,18 @@ def _match_args(p):
     p.add_argument("--report", help="also write an HTML report of the map")
     p.add_argument("--pose", choices=("auto", "same", "any"), default="auto",
                    help="same: both scans share orientation; any: arbitrary pose; auto (default) tries both")
+    p.add_argument("--landmarks", metavar="PAIRS",
+                   help="known pairs: CSV with source_vertex,target_vertex columns (or two bare "
+                        "integer columns), or NPZ as written by the landmark export; 2-3 pairs fix "
+                        "near-symmetric organs")
 
 
-def _match_options(pose: str):
+def _match_options(pose: str, landmarks: str | None = None):
     import surfacekit as sk
 
-    return sk.MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose])
+    pairs = () if landmarks is None else tuple(map(tuple, sk.load_landmarks(landmarks).tolist()))
+    return sk.MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose],
+                           landmarks=pairs)
 
 
 def _map_summary(corr) -> dict:
@@ -153,6 +159,12 @@ def _map_summary(corr) -> dict:
         out["mean_confidence"] = float(np.mean(corr.confidence))
     info = getattr(corr, "info", {}) or {}
     out.update({k: v for k, v in info.items() if k in ("route", "energy", "chosen")})
+    amb = info.get("rotation_ambiguity")
+    if amb:  # the shapes leave a turn of the map open (see sk.AmbiguousMatchWarning)
+        out["rotation_ambiguous"] = bool(amb["ambiguous"])
+    n_lm = len((info.get("options") or {}).get("landmarks") or ())
+    if n_lm:
+        out["landmark_pairs"] = n_lm
     return out
 
 
@@ -164,7 +176,7 @@ def _match(ctx: Context) -> dict:
     report_path = ctx.outputs.claim(a.report, suffixes=(".html",)) if a.report else None
     src, tgt = load_surface(a.source, "source"), load_surface(a.target, "target")
     t0 = time.perf_counter()
-    corr = sk.match(src, tgt, _match_options(a.pose), seed=a.seed)
+    corr = sk.match(src, tgt, _match_options(a.pose, a.landmarks), seed=a.seed)
     seconds = time.perf_counter() - t0
     without_timings(corr)
     corr.save(target_path)
@@ -181,7 +193,8 @@ def _match(ctx: Context) -> dict:
                      summary={k: v for k, v in summary.items() if k != "seconds"},
                      provenance={"inputs": [input_record(Path(a.source), src),
                                             input_record(Path(a.target), tgt)],
-                                 "options": {"pose": a.pose, "seed": a.seed},
+                                 "options": {"pose": a.pose, "seed": a.seed,
+                                             "landmarks": a.landmarks or "none"},
                                  "timings (s)": {"match": round(seconds, 2)}})
     return summary
 
@@ -196,6 +209,7 @@ def _change_args(p):
                                      "is transferred to the baseline for a regional table")
     p.add_argument("--region-field", default="region", help="name of the template's label field")
     p.add_argument("--pose", choices=("auto", "same", "any"), default="auto", help="as for 'match'")
+    p.add_argument("--landmarks", metavar="PAIRS", help="known vertex pairs, as for 'match'")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report and figures")
 
 
@@ -233,7 +247,7 @@ def _change(ctx: Context) -> dict:
     timings, t0 = {}, time.perf_counter()
     with ctx.progress(4, "change") as bar:
         if corr is None:
-            corr = sk.match(base, follow, _match_options(a.pose), seed=a.seed)
+            corr = sk.match(base, follow, _match_options(a.pose, a.landmarks), seed=a.seed)
         timings["match"] = time.perf_counter() - t0
         bar.update()
         labels = None

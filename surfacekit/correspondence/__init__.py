@@ -4,11 +4,13 @@ For research use only; not for diagnosis or treatment decisions.
 """
 from __future__ import annotations
 
+from .ambiguity import AmbiguousMatchWarning
 from .options import MatchOptions
-from .result import Correspondence, save_landmarks
+from .result import Correspondence, load_landmarks, save_landmarks
 from .solver import match
 
-__all__ = ["Correspondence", "MatchOptions", "geodesic_error", "map_quality", "match", "save_landmarks"]
+__all__ = ["AmbiguousMatchWarning", "Correspondence", "MatchOptions", "geodesic_error", "load_landmarks", "map_quality", "match",
+           "save_landmarks"]
 
 
 def __getattr__(name: str):

@@ -105,16 +105,33 @@ def kabsch(a: np.ndarray, b: np.ndarray, w: np.ndarray | None = None,
     return R, t, s
 
 
+def anchor_rows(anchors, n_points: int) -> tuple[np.ndarray, np.ndarray, float]:
+    """Unpack ``anchors = (source_rows (l,), target_points (l, 3), weight)`` for the fits below.
+
+    `weight` is the share of the closest-point pairs that the l anchors weigh
+    together (e.g. 0.25: all anchors count as much as a quarter of the points);
+    returns ``(rows, points, weight per anchor relative to one closest-point pair)``.
+    """
+    if anchors is None or len(anchors[0]) == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros((0, 3)), 0.0
+    rows, pts, share = anchors
+    return np.asarray(rows, dtype=np.int64), np.asarray(pts, float), share * n_points / len(rows)
+
+
 def icp(src: np.ndarray, tgt: np.ndarray, R: np.ndarray, *, iterations: int = 15,
-        tgt_tree: cKDTree | None = None, scaling: bool = False):
+        tgt_tree: cKDTree | None = None, scaling: bool = False, anchors=None):
     """Symmetric point-to-point ICP (Besl & McKay, IEEE TPAMI 1992) from an initial rotation.
 
     Closest points are taken in both directions each iteration, so that a partial
     overlap cannot shrink onto one end.  src (p, 3), tgt (q, 3) normalised
-    points.  Returns ``(R, t, s, rms)`` with rms the symmetric root-mean-square
-    closest-point distance after the last step (same units as the points).
+    points; `anchors` optional known pairs (see :func:`anchor_rows`) added to
+    every fit with their weight.  Returns ``(R, t, s, rms)`` with rms the
+    symmetric root-mean-square closest-point distance after the last step (same
+    units as the points).
     """
     tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
+    ia, pa, wa = anchor_rows(anchors, len(src) + len(tgt))
+    w = np.concatenate([np.ones(len(src) + len(tgt)), np.full(len(ia), wa)])
     t = np.zeros(3)
     s = 1.0
     rms = np.inf
@@ -122,9 +139,9 @@ def icp(src: np.ndarray, tgt: np.ndarray, R: np.ndarray, *, iterations: int = 15
         moved = s * src @ R.T + t
         d_st, j = tree_t.query(moved)
         d_ts, i = cKDTree(moved).query(tgt)
-        a = np.concatenate([src, src[i]])
-        b = np.concatenate([tgt[j], tgt])
-        R, t, s = kabsch(a, b, scaling=scaling)
+        a = np.concatenate([src, src[i], src[ia]])
+        b = np.concatenate([tgt[j], tgt, pa])
+        R, t, s = kabsch(a, b, w, scaling=scaling)
         new = np.sqrt(0.5 * (np.mean(d_st**2) + np.mean(d_ts**2)))
         if abs(rms - new) < 1e-6:
             rms = new
@@ -151,7 +168,8 @@ def distinct_poses(poses: list, scores: np.ndarray, n_keep: int, min_angle_deg: 
 
 def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndarray, tgt: np.ndarray,
                           *, sizes=(3, 6, 10, 16, 24), iterations: int = 4,
-                          stiffness: float = 1e-3, tgt_tree: cKDTree | None = None) -> np.ndarray:
+                          stiffness: float = 1e-3, tgt_tree: cKDTree | None = None,
+                          anchors=None) -> np.ndarray:
     """Smooth non-rigid ICP: a displacement field in the low Laplace–Beltrami eigenfunctions.
 
     Closest points in both directions (as in :func:`icp`) define where each point
@@ -163,9 +181,12 @@ def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndar
 
     points (p, 3) rigidly aligned source samples; basis (p, K) source eigenvectors
     at the samples (unit-area scaling); values (K,) unit-area eigenvalues; tgt
-    (q, 3).  Returns the displacement coefficients A (k_last, 3).
+    (q, 3); `anchors` optional known pairs (see :func:`anchor_rows`) pulled
+    towards their partners in every fit.  Returns the displacement coefficients A
+    (k_last, 3).
     """
     tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
+    ia, pa, wa = anchor_rows(anchors, len(points) + len(tgt))
     A = np.zeros((0, 3))
     for k in sizes:
         k = min(k, basis.shape[1])
@@ -176,28 +197,31 @@ def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndar
             Y = points + B @ A
             _, j = tree_t.query(Y)
             _, i = cKDTree(Y).query(tgt)
-            lhs = B.T @ B + B[i].T @ B[i] + reg
-            rhs = B.T @ (tgt[j] - points) + B[i].T @ (tgt - points[i])
+            lhs = B.T @ B + B[i].T @ B[i] + wa * B[ia].T @ B[ia] + reg
+            rhs = B.T @ (tgt[j] - points) + B[i].T @ (tgt - points[i]) + wa * B[ia].T @ (pa - points[ia])
             A = np.linalg.solve(lhs, rhs)
     return A
 
 
 def affine_icp(src: np.ndarray, tgt: np.ndarray, *, iterations: int = 10,
-               tgt_tree: cKDTree | None = None) -> tuple[np.ndarray, np.ndarray]:
+               tgt_tree: cKDTree | None = None, anchors=None) -> tuple[np.ndarray, np.ndarray]:
     """Affine ICP from the identity: ``src @ A.T + b`` fitted to symmetric closest points.
 
     Besl & McKay's ICP (1992) with a general affine model (least squares per
     iteration), so anisotropic growth is absorbed before the non-rigid step.
-    src (p, 3) rigidly aligned points, tgt (q, 3).  Returns ``(A (3, 3), b (3,))``.
+    src (p, 3) rigidly aligned points, tgt (q, 3); `anchors` optional known pairs
+    (see :func:`anchor_rows`).  Returns ``(A (3, 3), b (3,))``.
     """
     tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
+    ia, pa, wa = anchor_rows(anchors, len(src) + len(tgt))
+    sw = np.sqrt(np.concatenate([np.ones(len(src) + len(tgt)), np.full(len(ia), wa)]))[:, None]
     A, b = np.eye(3), np.zeros(3)
     for _ in range(iterations):
         moved = src @ A.T + b
         _, j = tree_t.query(moved)
         _, i = cKDTree(moved).query(tgt)
-        X = np.hstack([np.concatenate([src, src[i]]), np.ones((len(src) + len(tgt), 1))])
-        Y = np.concatenate([tgt[j], tgt])
-        sol = np.linalg.lstsq(X, Y, rcond=None)[0]
+        X = np.hstack([np.concatenate([src, src[i], src[ia]]), np.ones((len(src) + len(tgt) + len(ia), 1))])
+        Y = np.concatenate([tgt[j], tgt, pa])
+        sol = np.linalg.lstsq(sw * X, sw * Y, rcond=None)[0]
         A, b = sol[:3].T, sol[3]
     return A, b

@@ -48,6 +48,25 @@ def spectral_descriptors(shape: SpectralShape, basis: Eigenbasis, n_wks: int = 1
     return d / np.sqrt(shape.mass @ d**2)[None, :]
 
 
+def landmark_descriptors(shape: SpectralShape, vertices: np.ndarray, k: int = 60,
+                         times=(0.1, 0.4, 1.6)) -> np.ndarray:
+    """Heat kernel maps centred at landmark vertices, (n, len(vertices) * len(times)).
+
+    Column ``h_t(x, l) = Σ_i exp(-t λ_i / λ_1) φ_i(x) φ_i(l)`` (the heat kernel of
+    Sun, Ovsjanikov & Guibas, SGP 2009, at a fixed landmark l; with landmark
+    pairs these act as descriptors in the functional-map energy, as in
+    Ovsjanikov et al., SIGGRAPH 2012, Sec. 5).  Times are in units of the first
+    non-zero eigenvalue, so they mean the same on both shapes; each column is
+    rescaled to unit M-norm on the unit-area surface.
+    """
+    k = min(k, shape.phi.shape[1])
+    phi, lam = shape.phi[:, :k], shape.values[:k]
+    lam1 = lam[1] if k > 1 and lam[1] > 0 else 1.0
+    cols = [phi @ (np.exp(-t * lam / lam1)[:, None] * phi[np.asarray(vertices)].T) for t in times]
+    d = np.hstack(cols)
+    return d / np.sqrt(shape.mass @ d**2)[None, :]
+
+
 def face_to_vertex(s: Surface) -> sp.csr_matrix:
     """(n, m) operator integrating face values onto vertices with weight area/3 (unit total area)."""
     w = np.repeat(s.face_areas / (3.0 * s.area), 3)

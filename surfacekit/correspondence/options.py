@@ -53,9 +53,21 @@ class MatchOptions:
         Let the rigid pre-alignment also rescale (a similarity, Umeyama 1991) beyond
         the normalisation of both shapes to a common RMS radius.
     landmarks : tuple of (source_vertex, target_vertex) pairs, default ()
-        Known corresponding vertices.  With at least 3, their Kabsch pose is tried
-        first; with any, the distance between mapped and given partners is added
-        to the energy that picks the winning candidate.
+        Known corresponding vertices (e.g. placed by an expert, or exported by
+        :meth:`Correspondence.landmarks`).  They are used everywhere: with at least
+        3, their Kabsch pose is tried first; they anchor every rigid, affine and
+        smooth non-rigid fit (weight `landmark_weight`); heat kernels centred at
+        them join the descriptors of the intrinsic functional map; they are
+        imposed in every ZoomOut step and on the final maps; their misfit is
+        added to the energy that picks the winning candidate.  On near-symmetric
+        organs (a roughly round cross-section) three or four well-spread pairs
+        fix what shape alone cannot.
+    landmark_weight : float, default 0.25
+        Share of the closest-point pairs that all landmarks together weigh in the
+        extrinsic fits.
+    check_ambiguity : bool, default True
+        Probe whether the shapes fix the map's rotation (about 0.1 s) and warn
+        (:class:`AmbiguousMatchWarning`) if they do not.
     """
 
     n_eigen: int = 60
@@ -75,6 +87,8 @@ class MatchOptions:
     icp_iterations: int = 20
     scaling: bool = False
     landmarks: tuple = ()
+    landmark_weight: float = 0.25
+    check_ambiguity: bool = True
 
     def validate(self) -> MatchOptions:
         if self.n_eigen < 4:
@@ -91,6 +105,8 @@ class MatchOptions:
             raise ValueError(f"n_poses must be >= 1, got {self.n_poses}")
         if self.coordinate_weight < 0:
             raise ValueError(f"coordinate_weight must be >= 0, got {self.coordinate_weight}")
+        if not self.landmark_weight >= 0:
+            raise ValueError(f"landmark_weight must be >= 0, got {self.landmark_weight}")
         if self.same_orientation not in (None, True, False):
             raise ValueError(f"same_orientation must be None, True or False, got {self.same_orientation!r}")
         return self

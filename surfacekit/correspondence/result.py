@@ -238,6 +238,52 @@ def save_landmarks(landmarks: dict, path) -> Path:
     return path
 
 
+def load_landmarks(path) -> np.ndarray:
+    """Read landmark pairs (source vertex, target vertex) from CSV or NPZ, (l, 2) int64.
+
+    Accepts what :func:`save_landmarks` writes (CSV with ``source_vertex`` and
+    ``target_vertex`` columns, or NPZ with ``source_index`` / ``target_index``)
+    and a plain CSV of two integer columns without header.  Problems raise
+    ValueError naming the file and the row.
+    """
+    from ..io import load_fields
+
+    path = Path(path)
+    if not path.is_file():
+        raise ValueError(f"no such landmark file: {path}")
+    if path.suffix.lower() == ".npz":
+        f = load_fields(path)
+        if "source_index" not in f or "target_index" not in f:
+            raise ValueError(f"{path.name}: NPZ landmark file needs 'source_index' and 'target_index' arrays")
+        pairs = np.stack([np.ravel(f["source_index"]), np.ravel(f["target_index"])], axis=1)
+    else:
+        try:
+            rows = list(csv.reader(path.read_text(encoding="utf-8").splitlines()))
+        except UnicodeDecodeError:
+            raise ValueError(f"{path.name}: landmark file is not a text CSV") from None
+        rows = [r for r in rows if r and any(c.strip() for c in r)]
+        cols = (0, 1)
+        start = 0
+        if rows and not rows[0][0].strip().lstrip("-").isdigit():  # a header
+            head = [c.strip() for c in rows[0]]
+            if "source_vertex" not in head or "target_vertex" not in head:
+                raise ValueError(f"{path.name}: landmark CSV header needs 'source_vertex' and "
+                                 "'target_vertex' columns")
+            cols, start = (head.index("source_vertex"), head.index("target_vertex")), 1
+        pairs = []
+        for n, r in enumerate(rows[start:], start=start + 1):
+            try:
+                pairs.append((int(r[cols[0]]), int(r[cols[1]])))
+            except (ValueError, IndexError):
+                raise ValueError(f"{path.name}: row {n} does not hold two vertex indices") from None
+        pairs = np.array(pairs, dtype=np.int64).reshape(-1, 2)
+    if not len(pairs):
+        raise ValueError(f"{path.name}: no landmark pairs")
+    if not np.issubdtype(pairs.dtype, np.integer) or pairs.min() < 0:
+        raise ValueError(f"{path.name}: landmark vertices must be non-negative integers")
+    return pairs.astype(np.int64)
+
+
 def _json_default(o):
     if isinstance(o, np.generic):
         return o.item()

@@ -4,6 +4,7 @@ from __future__ import annotations
 import contextlib
 import logging
 import time
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -12,7 +13,8 @@ from scipy.spatial import cKDTree
 from ..operators import eigenbasis
 from ..surface import Surface, SurfaceError
 from . import extrinsic as ex
-from .fmap import SpectralShape, estimate_fmap, spectral_descriptors
+from .ambiguity import AMBIGUOUS_BELOW, AmbiguousMatchWarning, rotation_ambiguity
+from .fmap import SpectralShape, estimate_fmap, landmark_descriptors, spectral_descriptors
 from .options import MatchOptions
 from .result import Correspondence
 from .sampling import farthest_points
@@ -44,6 +46,8 @@ class _Shape:
     spectral: SpectralShape
     desc: np.ndarray        # (n, d) unit-norm spectral descriptors
     landmarks: np.ndarray   # (l, 2) known (source, target) vertex pairs
+    lm_vertices: np.ndarray  # (l,) this shape's landmark vertices, in pair order
+    lm_rows: np.ndarray     # (l,) their positions in `samples`
 
     @property
     def sp(self) -> np.ndarray:
@@ -58,15 +62,24 @@ class _Shape:
         return self.desc[self.samples]
 
 
-def _prepare(s: Surface, opts: MatchOptions, seed: int) -> _Shape:
+def _prepare(s: Surface, opts: MatchOptions, seed: int, side: int) -> _Shape:
+    """`side` 0 for the source, 1 for the target (which column of the landmark pairs is ours)."""
     basis = eigenbasis(s, opts.n_eigen)
     pts, _, _scale = ex.normalized_coordinates(s)
-    float(basis.mass.sum())
-    samples = np.sort(farthest_points(pts, min(opts.n_samples, s.n_vertices), seed=seed))
+    lm = _landmark_array(opts)
+    samples = farthest_points(pts, min(opts.n_samples, s.n_vertices), seed=seed)
+    samples = np.unique(np.concatenate([samples, lm[:, side]]))  # landmarks are always sampled
     spectral = SpectralShape.from_basis(s, basis)
     return _Shape(s, pts, spectral.phi, spectral.values, samples, s.vertex_areas / s.area,
                   cKDTree(pts), spectral, spectral_descriptors(spectral, basis),
-                  _landmark_array(opts))
+                  lm, lm[:, side], np.searchsorted(samples, lm[:, side]))
+
+
+def _anchors(src: _Shape, tgt_points: np.ndarray, opts: MatchOptions):
+    """Landmark pairs as anchors for the extrinsic fits: source sample rows and target points."""
+    if not len(src.landmarks):
+        return None
+    return src.lm_rows, tgt_points, opts.landmark_weight
 
 
 def _check_inputs(source, target, options) -> MatchOptions:
@@ -102,45 +115,57 @@ def _coarse_poses(src: _Shape, tgt: _Shape, opts: MatchOptions, seed: int) -> li
     """Rigid poses from every candidate rotation, each polished by a short ICP on few points."""
     rots = ex.candidate_rotations(src.points, src.weights, tgt.points, tgt.weights,
                                   opts.same_orientation)
-    lm = _landmark_array(opts)
+    lm = src.landmarks
     if len(lm) >= 3:  # known pairs fix the pose: try it first
         R, _, _ = ex.kabsch(src.points[lm[:, 0]], tgt.points[lm[:, 1]])
         rots = np.concatenate([R[None], rots])
-    few_s = src.sp[farthest_points(src.sp, 300, seed=seed)]
+    few_s = np.concatenate([src.sp[farthest_points(src.sp, 300, seed=seed)], src.points[lm[:, 0]]])
     few_t = tgt.sp[farthest_points(tgt.sp, 300, seed=seed)]
     tree = cKDTree(few_t)
-    poses = [ex.icp(few_s, few_t, R, iterations=8, tgt_tree=tree, scaling=opts.scaling) for R in rots]
+    anchors = None
+    if len(lm):
+        anchors = (np.arange(len(few_s) - len(lm), len(few_s)), tgt.points[lm[:, 1]], opts.landmark_weight)
+    poses = [ex.icp(few_s, few_t, R, iterations=8, tgt_tree=tree, scaling=opts.scaling, anchors=anchors)
+             for R in rots]
     scores = np.array([p[3] for p in poses])
+    if len(lm):  # rank poses by closest-point misfit plus landmark misfit
+        scores = scores + np.array([np.sqrt(np.mean(np.sum(
+            (p[2] * src.points[lm[:, 0]] @ p[0].T + p[1] - tgt.points[lm[:, 1]]) ** 2, axis=1)))
+            for p in poses])
     keep = ex.distinct_poses(poses, scores, opts.n_poses)
     return [poses[i] for i in keep]
 
 
 def _stage(src: _Shape, tgt: _Shape, cand: dict, ks, opts: MatchOptions) -> dict:
     """Advance a candidate through ZoomOut steps `ks`, with coordinates following a smooth deformation."""
+    fixed = (tgt.lm_rows, src.lm_rows) if len(src.landmarks) else None
     C, t2s, s2t, coords = zoomout(tgt.sphi, src.sphi, cand["t2s"], ks=ks, bijective=opts.bijective,
                                   coords_t=tgt.sp, coords_s=cand["coords"], s2t=cand.get("s2t"),
-                                  coord_weight=opts.coordinate_weight)
+                                  coord_weight=opts.coordinate_weight, fixed=fixed)
     return {**cand, "C": C, "t2s": t2s, "s2t": s2t, "coords": coords}
 
 
 def _extrinsic_start(src: _Shape, tgt: _Shape, pose, opts: MatchOptions) -> dict:
     """Initial candidate from a rigid pose: ICP on the samples, then closest points."""
     R, t, s, _rms = ex.icp(src.sp, tgt.sp, pose[0], iterations=opts.icp_iterations,
-                          scaling=opts.scaling)
+                          scaling=opts.scaling, anchors=_anchors(src, tgt.points[tgt.lm_vertices], opts))
     return _deformed_start(src, tgt, "extrinsic", R, t, s, opts)
 
 
 def _deformed_start(src: _Shape, tgt: _Shape, route: str, R, t, s, opts: MatchOptions) -> dict:
     """Candidate start from a rigid pose: affine ICP, smooth non-rigid ICP, then closest points."""
     moved = s * src.sp @ R.T + t
-    affine = ex.affine_icp(moved, tgt.sp) if opts.affine else (np.eye(3), np.zeros(3))
+    anchors = _anchors(src, tgt.points[tgt.lm_vertices], opts)
+    affine = ex.affine_icp(moved, tgt.sp, anchors=anchors) if opts.affine else (np.eye(3), np.zeros(3))
     moved = moved @ affine[0].T + affine[1]
     A = np.zeros((0, 3))
     if opts.deform_k > 0:
         sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
-        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes)
+        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes, anchors=anchors)
     coords = moved + src.sphi[:, :len(A)] @ A
-    return {"route": route, "t2s": nearest_rows(tgt.sp, coords), "coords": coords,
+    t2s = nearest_rows(tgt.sp, coords)
+    t2s[tgt.lm_rows] = src.lm_rows
+    return {"route": route, "t2s": t2s, "coords": coords,
             "pose": (R, t, s), "affine": affine, "displacement": A,
             "pose_residual": _pose_residual(src, tgt, R, t, s)}
 
@@ -155,10 +180,16 @@ def _pose_residual(src: _Shape, tgt: _Shape, R, t, s) -> float:
 def _intrinsic_start(src: _Shape, tgt: _Shape, opts: MatchOptions) -> dict:
     """Initial candidate from descriptors alone; its pose is then fitted to the map (Kabsch)."""
     k = min(opts.intrinsic_k, src.phi.shape[1], tgt.phi.shape[1])
-    C = estimate_fmap(src.spectral, tgt.spectral, src.desc, tgt.desc, k)
+    desc_s, desc_t = src.desc, tgt.desc
+    if len(src.landmarks):  # landmark pairs enter the functional map as heat-kernel descriptors
+        desc_s = np.hstack([landmark_descriptors(src.spectral, src.lm_vertices), desc_s])
+        desc_t = np.hstack([landmark_descriptors(tgt.spectral, tgt.lm_vertices), desc_t])
+    C = estimate_fmap(src.spectral, tgt.spectral, desc_s, desc_t, k)
     t2s, _ = pointmaps_from_fmap(C, tgt.sphi[:, :k], src.sphi[:, :k], both=False)
+    t2s[tgt.lm_rows] = src.lm_rows
     R, _, _ = ex.kabsch(src.sp[t2s], tgt.sp)
-    R, t, s, _ = ex.icp(src.sp, tgt.sp, R, iterations=opts.icp_iterations, scaling=opts.scaling)
+    R, t, s, _ = ex.icp(src.sp, tgt.sp, R, iterations=opts.icp_iterations, scaling=opts.scaling,
+                        anchors=_anchors(src, tgt.points[tgt.lm_vertices], opts))
     return _deformed_start(src, tgt, "intrinsic", R, t, s, opts)
 
 
@@ -177,10 +208,8 @@ def _energy(src: _Shape, tgt: _Shape, cand: dict) -> dict:
     cover = 1.0 - 0.5 * (len(np.unique(t2s)) / len(s2t) + len(np.unique(s2t)) / len(t2s))
     rigid = cand["pose_residual"]
     total = rigid + 0.1 * (rt_t + rt_s) + 0.01 * desc
-    if len(src.landmarks):  # distance of the mapped landmarks from their partners
-        sample_of = cKDTree(tgt.sp).query(tgt.points[src.landmarks[:, 1]])[1]
-        total += float(np.mean(np.linalg.norm(
-            src.sp[t2s[sample_of]] - src.points[src.landmarks[:, 0]], axis=1)))
+    if len(src.landmarks):  # how far the candidate's pose and deformation put each landmark from its partner
+        total += float(np.mean(np.linalg.norm(cand["coords"][src.lm_rows] - tgt.sp[tgt.lm_rows], axis=1)))
     return {"total": total, "rigid_residual": rigid, "descriptor": desc,
             "round_trip": 0.5 * (rt_t + rt_s), "coverage_gap": cover}
 
@@ -197,9 +226,31 @@ def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
     emb_t = np.hstack([tgt.phi[:, :k] @ C, w * tgt.points])
     emb_s = np.hstack([src.phi[:, :k], w * moved])
     if w * np.std(tgt.points) < np.sqrt(k):  # coordinates too light to restrict the search
-        return nearest_rows(emb_t, emb_s), nearest_rows(emb_s, emb_t)
-    return (nearest_rows_local(emb_t, emb_s, tgt.points, moved),
-            nearest_rows_local(emb_s, emb_t, moved, tgt.points))
+        t2s, s2t = nearest_rows(emb_t, emb_s), nearest_rows(emb_s, emb_t)
+    else:
+        t2s = nearest_rows_local(emb_t, emb_s, tgt.points, moved)
+        s2t = nearest_rows_local(emb_s, emb_t, moved, tgt.points)
+    t2s[tgt.lm_vertices] = src.lm_vertices
+    s2t[src.lm_vertices] = tgt.lm_vertices
+    return t2s, s2t
+
+
+def _ambiguity(src: _Shape, tgt: _Shape, cand: dict) -> dict | None:
+    """Rotation probe around the chosen pose (see :func:`rotation_ambiguity`); None with >= 2 landmarks."""
+    if len(src.landmarks) >= 2:  # two or more pairs fix any rotation the shape leaves open
+        return None
+    R, t, s = cand["pose"]
+    probe = rotation_ambiguity(s * src.sp @ R.T + t, src.sphi, src.values, tgt.sp, tgt.tree,
+                               tgt.points, tgt.surface.vertex_normals, tgt.weights)
+    probe["ambiguous"] = probe["ratio"] < AMBIGUOUS_BELOW
+    if probe["ambiguous"]:
+        names = ("longest", "middle", "shortest")
+        warnings.warn(
+            f"the shapes hardly constrain a {abs(probe['angle_deg']):.0f}-degree turn about the target's "
+            f"{names[probe['axis']]} principal axis (misfit ratio {probe['ratio']:.2f}, below "
+            f"{AMBIGUOUS_BELOW}): the map may be turned about that axis; give two or three "
+            "landmark pairs (MatchOptions.landmarks, or --landmarks on the command line) to fix it", AmbiguousMatchWarning, stacklevel=3)
+    return probe
 
 
 def _confidence(points: np.ndarray, roundtrip: np.ndarray, width: float = 0.05) -> np.ndarray:
@@ -224,6 +275,10 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     coordinates appended to the spectral embeddings.  The candidate with the
     lowest unsupervised energy (robust pose residual, round-trip error,
     descriptor disagreement, landmark distance) is extended to all vertices.
+    Finally a probe turns the chosen pose by ±30 degrees about each principal
+    axis and refits: if the shapes barely resist a turn (a near-round cross
+    section, say), an :class:`AmbiguousMatchWarning` says so and
+    ``info["rotation_ambiguity"]`` records it; landmark pairs fix such a map.
 
     Parameters
     ----------
@@ -245,7 +300,7 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     t0 = time.perf_counter()
     timings = {}
     with _blas_single_thread():
-        src, tgt = _prepare(source, opts, seed), _prepare(target, opts, seed + 1)
+        src, tgt = _prepare(source, opts, seed, 0), _prepare(target, opts, seed + 1, 1)
         timings["prepare"] = time.perf_counter() - t0
         starts = [_extrinsic_start(src, tgt, pose, opts) for pose in _coarse_poses(src, tgt, opts, seed)]
         if opts.intrinsic_candidate:
@@ -263,6 +318,7 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         energies = [_energy(src, tgt, c) for c in candidates]
         best = int(np.argmin([e["total"] for e in energies]))
         timings["fine"] = time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
+        ambiguity = _ambiguity(src, tgt, candidates[best]) if opts.check_ambiguity else None
         t2s, s2t = _extend(src, tgt, candidates[best], opts)
         # the reported functional map: from the final full-resolution map, M-weighted
         # (C = Φ_tᵀ M_t Π Φ_s, Ovsjanikov et al. 2012), in the unit-area bases
@@ -273,6 +329,7 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         "coarse_energies": [float(e) for e in coarse_e],
         "candidates": [{"route": c["route"], **e} for c, e in zip(candidates, energies)],
         "chosen": best,
+        "rotation_ambiguity": ambiguity,
         "timings_s": timings,
         "options": opts.to_dict(),
         "seed": int(seed),

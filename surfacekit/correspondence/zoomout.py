@@ -114,7 +114,8 @@ def smooth_deformation(phi_s: np.ndarray, target_points: np.ndarray, s2t: np.nda
 
 def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, bijective: bool = True,
             coords_t: np.ndarray | None = None, coords_s: np.ndarray | None = None,
-            coord_weight: float = 0.0, deform_k: int = 0, s2t: np.ndarray | None = None):
+            coord_weight: float = 0.0, deform_k: int = 0, s2t: np.ndarray | None = None,
+            fixed: tuple[np.ndarray, np.ndarray] | None = None):
     """ZoomOut spectral upsampling (Melzi, Ren, Rodolà, Sharma, Wonka & Ovsjanikov, ACM TOG / SIGGRAPH Asia 2019).
 
     Alternates, for each k in `ks` (increasing): the k x k functional map of the
@@ -135,6 +136,8 @@ def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, biject
         with ``min(k, deform_k)`` eigenfunctions), so coordinates keep guiding the
         map through non-rigid motion
     s2t : (p,) optional initial source-to-target map
+    fixed : optional ``(target_rows (l,), source_rows (l,))`` known pairs (landmarks),
+        imposed on both point maps at every step
 
     Returns
     -------
@@ -151,5 +154,8 @@ def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, biject
                                            coord_weight * coords_s)
         else:
             t2s, s2t = pointmaps_from_fmap(C, phi_t[:, :k], phi_s[:, :k])
+        if fixed is not None:
+            t2s[fixed[0]] = fixed[1]
+            s2t[fixed[1]] = fixed[0]
     C = fmap_from_pointmap(phi_t[:, :ks[-1]], phi_s[:, :ks[-1]], t2s, s2t if bijective else None)
     return C, t2s, s2t, coords_s

@@ -1,0 +1,137 @@
+"""Landmark pairs in the correspondence solver, the rotation-ambiguity probe and landmark files.
+
+Outside references: the heat kernel of the round sphere from the addition theorem
+of spherical harmonics (DLMF §14.30.9, common practice); correspondence truth from
+the sphere parameters of the synthetic organs (independent of the solver).
+"""
+import json
+import sys
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.spatial import cKDTree
+from scipy.special import eval_legendre
+
+import surfacekit as sk
+from surfacekit import cli
+from surfacekit.correspondence.fmap import SpectralShape, landmark_descriptors
+from surfacekit.correspondence.sampling import farthest_points
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
+from groundtruth import make_pair
+
+
+def true_partners(pair, source_ids):
+    """Target vertex nearest to the true image of each source vertex (outside truth)."""
+    face, bary = pair.source_truth
+    truth = np.einsum("nk,nkd->nd", bary[source_ids], pair.target.vertices[pair.target.faces[face[source_ids]]])
+    return cKDTree(pair.target.vertices).query(truth)[1]
+
+
+def test_landmark_heat_kernels_match_the_sphere_series():
+    """On the unit-area sphere, eigenvalues l(l+1)/r² with r² = 1/(4π), λ_1 = 2/r², so the
+    column for time t is Σ_l (2l+1)/(4π r²) exp(-t l(l+1)/2) P_l(cos θ) (addition theorem,
+    DLMF §14.30.9), truncated at l = 6 (49 eigenpairs = complete bands).  Compared after
+    the same unit-norm scaling; tolerance 2% of the peak (discretisation, from the
+    eigenvalue errors of ~0.5% at this resolution)."""
+    s = sk.synthetic.icosphere(4)  # 2562 vertices, unit sphere
+    basis = sk.eigenbasis(s, 49)
+    shape = SpectralShape.from_basis(s, basis)
+    landmark = 17
+    times = (0.1, 0.4)
+    d = landmark_descriptors(shape, np.array([landmark]), k=49, times=times)
+    u = s.vertices / np.linalg.norm(s.vertices, axis=1, keepdims=True)
+    cos = np.clip(u @ u[landmark], -1, 1)
+    for c, t in enumerate(times):
+        series = sum((2 * l + 1) * np.exp(-t * l * (l + 1) / 2) * eval_legendre(l, cos) for l in range(7))
+        series /= np.sqrt(shape.mass @ series**2)
+        assert np.max(np.abs(d[:, c] - series)) < 0.02 * series.max(), t
+
+
+@pytest.fixture(scope="module")
+def ventricle_pair():
+    """The synthetic ventricle (round cross-section) after bending, local growth, anisotropic
+    growth and noise: its roll about the long axis is hardly fixed by shape."""
+    return make_pair("ventricle", "mixed", n_source=2000, n_target=2400, seed=3)
+
+
+def test_landmarks_fix_a_near_symmetric_ventricle(ventricle_pair):
+    """Without landmarks the solver warns that a turn is undetermined; with three true
+    pairs (outside truth) the map is accurate and sends each landmark to its partner."""
+    p = ventricle_pair
+    with pytest.warns(sk.AmbiguousMatchWarning, match="landmark pairs"):
+        plain = sk.match(p.source, p.target)
+    assert plain.info["rotation_ambiguity"]["ambiguous"]
+    ids = farthest_points(p.source.vertices, 3, seed=5)
+    partners = true_partners(p, ids)
+    opts = sk.MatchOptions(landmarks=tuple(zip(ids.tolist(), partners.tolist())))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", sk.AmbiguousMatchWarning)  # two or more pairs: no probe
+        fixed = sk.match(p.source, p.target, opts)
+    assert fixed.info["rotation_ambiguity"] is None
+    np.testing.assert_array_equal(fixed.source_to_target[ids], partners)
+    face, bary = p.source_truth
+    idx = np.arange(0, p.source.n_vertices, 10)
+    err_fixed = sk.geodesic_error(p.target, fixed.source_to_target[idx], (face[idx], bary[idx])).mean()
+    err_plain = sk.geodesic_error(p.target, plain.source_to_target[idx], (face[idx], bary[idx])).mean()
+    assert err_fixed < 0.035, err_fixed
+    assert err_fixed < err_plain
+
+
+def test_no_ambiguity_warning_on_a_distinctive_kidney():
+    """The kidney's hilum and curvature fix every rotation: the probe's misfit ratio is
+    well above the threshold and nothing is warned."""
+    p = make_pair("kidney", "growth", n_source=1500, n_target=1800, seed=4)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", sk.AmbiguousMatchWarning)
+        corr = sk.match(p.source, p.target)
+    amb = corr.info["rotation_ambiguity"]
+    assert not amb["ambiguous"] and amb["ratio"] > 1.3
+
+
+def test_landmark_files_round_trip_and_bad_files(tmp_path):
+    s = sk.synthetic.icosphere(2)
+    corr = sk.Correspondence(source_to_target=np.arange(s.n_vertices), target_to_source=np.arange(s.n_vertices))
+    lm = corr.landmarks(s, s, 6)
+    for name in ("lm.csv", "lm.npz"):
+        sk.save_landmarks(lm, tmp_path / name)
+        got = sk.load_landmarks(tmp_path / name)
+        np.testing.assert_array_equal(got, np.stack([lm["source_index"], lm["target_index"]], axis=1))
+    (tmp_path / "bare.csv").write_text("3,5\n7,11\n")
+    np.testing.assert_array_equal(sk.load_landmarks(tmp_path / "bare.csv"), [[3, 5], [7, 11]])
+    (tmp_path / "bad.csv").write_text("3,5\n7,x\n")
+    with pytest.raises(ValueError, match="row 2 does not hold two vertex indices"):
+        sk.load_landmarks(tmp_path / "bad.csv")
+    (tmp_path / "head.csv").write_text("a,b\n1,2\n")
+    with pytest.raises(ValueError, match="source_vertex"):
+        sk.load_landmarks(tmp_path / "head.csv")
+    (tmp_path / "neg.csv").write_text("-1,2\n")
+    with pytest.raises(ValueError, match="non-negative"):
+        sk.load_landmarks(tmp_path / "neg.csv")
+    with pytest.raises(ValueError, match="no such landmark file"):
+        sk.load_landmarks(tmp_path / "missing.csv")
+
+
+def test_command_line_takes_landmarks(tmp_path, capsys):
+    """'match --landmarks' uses the pairs (they are imposed on the map); a bad file is one
+    error line, exit 2, and nothing is written."""
+    a, _ = sk.synthetic.organ_surface("kidney", 700, seed=1)
+    b, _ = sk.synthetic.organ_surface("kidney", 800, seed=2)
+    sk.save(a, tmp_path / "a.ply")
+    sk.save(b, tmp_path / "b.ply")
+    (tmp_path / "pairs.csv").write_text("source_vertex,target_vertex\n0,5\n100,120\n300,333\n")
+    code = cli.main([str(x) for x in ("match", tmp_path / "a.ply", tmp_path / "b.ply", "-o",
+                                      tmp_path / "m.npz", "--landmarks", tmp_path / "pairs.csv", "--json")])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert json.loads(out.out)["landmark_pairs"] == 3
+    corr = sk.Correspondence.load(tmp_path / "m.npz")
+    np.testing.assert_array_equal(corr.source_to_target[[0, 100, 300]], [5, 120, 333])
+    (tmp_path / "broken.csv").write_text("source_vertex,target_vertex\n0,zz\n")
+    code = cli.main([str(x) for x in ("match", tmp_path / "a.ply", tmp_path / "b.ply", "-o",
+                                      tmp_path / "m2.npz", "--landmarks", tmp_path / "broken.csv")])
+    err = [line for line in capsys.readouterr().err.splitlines() if line.strip()]
+    assert code == 2 and len(err) == 1 and "row 2" in err[0]
+    assert not (tmp_path / "m2.npz").exists()
