@@ -160,6 +160,20 @@ def make_pair(kind: str, deformation: str, *, n_source: int = 3000, n_target: in
     )
 
 
+def true_landmarks(pair: Pair, n: int = 3, seed: int = 5) -> tuple:
+    """`n` well-spread source vertices and the target vertices nearest their true images,
+    as ``((source, target), ...)`` for :class:`surfacekit.MatchOptions` — what an expert
+    would place (e.g. the apex and the two junctions of the right ventricle on a left
+    ventricle, common practice in cardiac imaging)."""
+    from surfacekit.correspondence.sampling import farthest_points
+
+    ids = farthest_points(pair.source.vertices, n, seed=seed)
+    face, bary = pair.source_truth
+    pts = np.einsum("nk,nkd->nd", bary[ids], pair.target.vertices[pair.target.faces[face[ids]]])
+    tids = cKDTree(pair.target.vertices).query(pts)[1]
+    return tuple(zip(ids.tolist(), tids.tolist()))
+
+
 def benchmark_pairs(n_source: int = 3000, n_target: int = 3600, seeds=(0, 1)) -> list[Pair]:
     """Every organ kind with every deformation, for each seed (random rotation per pair)."""
     kinds = ("kidney", "liver", "hippocampus", "ventricle")

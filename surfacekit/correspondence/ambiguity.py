@@ -10,6 +10,10 @@ from . import extrinsic as ex
 #: the benchmark organs (benchmarks/bench_match.py): 0.90-1.10 on the synthetic ventricle
 #: (round cross-section), 1.37-2.2 on the kidney, liver and hippocampus.
 AMBIGUOUS_BELOW = 1.2
+#: misfit ratio below which the solver adopts the turned pose and refines again: a turn that
+#: fits clearly better means the pose search stopped in a local minimum (seen on organs grown
+#: anisotropically, whose stretched shape pulls the rigid fit 20-30 degrees off).
+TURN_BELOW = 0.8
 
 
 class AmbiguousMatchWarning(UserWarning):
@@ -48,7 +52,8 @@ def rotation_ambiguity(moved: np.ndarray, phi: np.ndarray, values: np.ndarray, t
     eigenvalues; tgt_samples (q, 3); tgt_tree/tgt_points/tgt_normals/tgt_weights:
     all target vertices (normalised units).  Returns ``{"ratio": min ratio,
     "axis": 0/1/2 (principal axis, largest variance first), "angle_deg",
-    "misfit": unrotated misfit}``.
+    "misfit": unrotated misfit, "turn": (3, 3) rotation, "centre": (3,)}`` where
+    ``(x - centre) @ turn.T + centre`` is the best turned copy.
     """
     E = ex.principal_frame(tgt_points, tgt_weights)
     c = tgt_weights @ tgt_points / tgt_weights.sum()
@@ -60,4 +65,6 @@ def rotation_ambiguity(moved: np.ndarray, phi: np.ndarray, values: np.ndarray, t
             Rr = Rotation.from_rotvec(np.deg2rad(sign * angle_deg) * E[:, axis]).as_matrix()
             ratio = _nonrigid_misfit((moved - c) @ Rr.T + c, *args) / base
             best = min(best, (ratio, axis, sign * angle_deg))
-    return {"ratio": float(best[0]), "axis": int(best[1]), "angle_deg": float(best[2]), "misfit": base}
+    turn = Rotation.from_rotvec(np.deg2rad(best[2]) * E[:, best[1]]).as_matrix()
+    return {"ratio": float(best[0]), "axis": int(best[1]), "angle_deg": float(best[2]), "misfit": base,
+            "turn": turn, "centre": c}

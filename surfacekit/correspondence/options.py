@@ -66,8 +66,11 @@ class MatchOptions:
         Share of the closest-point pairs that all landmarks together weigh in the
         extrinsic fits.
     check_ambiguity : bool, default True
-        Probe whether the shapes fix the map's rotation (about 0.1 s) and warn
-        (:class:`AmbiguousMatchWarning`) if they do not.
+        Probe whether a turn of the chosen pose fits better (about 0.15 s): adopt
+        it if clearly so, and warn (:class:`AmbiguousMatchWarning`) if the shapes
+        do not fix the rotation.
+    max_turns : int, default 3
+        Most turned poses adopted after the probe.
     """
 
     n_eigen: int = 60
@@ -89,6 +92,7 @@ class MatchOptions:
     landmarks: tuple = ()
     landmark_weight: float = 0.25
     check_ambiguity: bool = True
+    max_turns: int = 3
 
     def validate(self) -> MatchOptions:
         if self.n_eigen < 4:
@@ -105,6 +109,8 @@ class MatchOptions:
             raise ValueError(f"n_poses must be >= 1, got {self.n_poses}")
         if self.coordinate_weight < 0:
             raise ValueError(f"coordinate_weight must be >= 0, got {self.coordinate_weight}")
+        if self.max_turns < 0:
+            raise ValueError(f"max_turns must be >= 0, got {self.max_turns}")
         if not self.landmark_weight >= 0:
             raise ValueError(f"landmark_weight must be >= 0, got {self.landmark_weight}")
         if self.same_orientation not in (None, True, False):

@@ -13,7 +13,7 @@ from scipy.spatial import cKDTree
 from ..operators import eigenbasis
 from ..surface import Surface, SurfaceError
 from . import extrinsic as ex
-from .ambiguity import AMBIGUOUS_BELOW, AmbiguousMatchWarning, rotation_ambiguity
+from .ambiguity import AMBIGUOUS_BELOW, TURN_BELOW, AmbiguousMatchWarning, rotation_ambiguity
 from .fmap import SpectralShape, estimate_fmap, landmark_descriptors, spectral_descriptors
 from .options import MatchOptions
 from .result import Correspondence
@@ -235,22 +235,47 @@ def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
     return t2s, s2t
 
 
-def _ambiguity(src: _Shape, tgt: _Shape, cand: dict) -> dict | None:
-    """Rotation probe around the chosen pose (see :func:`rotation_ambiguity`); None with >= 2 landmarks."""
-    if len(src.landmarks) >= 2:  # two or more pairs fix any rotation the shape leaves open
-        return None
+def _probe(src: _Shape, tgt: _Shape, cand: dict) -> dict:
     R, t, s = cand["pose"]
-    probe = rotation_ambiguity(s * src.sp @ R.T + t, src.sphi, src.values, tgt.sp, tgt.tree,
-                               tgt.points, tgt.surface.vertex_normals, tgt.weights)
-    probe["ambiguous"] = probe["ratio"] < AMBIGUOUS_BELOW
-    if probe["ambiguous"]:
+    return rotation_ambiguity(s * src.sp @ R.T + t, src.sphi, src.values, tgt.sp, tgt.tree,
+                              tgt.points, tgt.surface.vertex_normals, tgt.weights)
+
+
+def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse, ks_fine):
+    """Turn the chosen candidate while a turned pose fits clearly better, then judge ambiguity.
+
+    The rotation probe (:func:`rotation_ambiguity`) turns the pose by ±30 degrees
+    about each principal axis and refits an affine map.  If a turn lowers the
+    misfit below `TURN_BELOW` times the current one, the pose search had stopped
+    in a local minimum: the candidate is rebuilt from the turned pose and probed
+    again (at most `opts.max_turns` times).  If the final pose's best turn is
+    within `AMBIGUOUS_BELOW` of its misfit, the shapes do not fix that rotation:
+    an :class:`AmbiguousMatchWarning` is issued.  Skipped (None) with two or
+    more landmark pairs, which fix any rotation.  Returns ``(candidate, probe)``.
+    """
+    if len(src.landmarks) >= 2 or not opts.check_ambiguity:
+        return cand, None
+    probe = _probe(src, tgt, cand)
+    turns = 0
+    while probe["ratio"] < TURN_BELOW and turns < opts.max_turns:
+        R, t, s = cand["pose"]
+        turn, c = probe["turn"], probe["centre"]
+        cand = _deformed_start(src, tgt, cand["route"] + "+turn", turn @ R, turn @ (t - c) + c, s, opts)
+        cand = _stage(src, tgt, _stage(src, tgt, cand, ks_coarse, opts), ks_fine, opts)
+        probe = _probe(src, tgt, cand)
+        turns += 1
+    out = {k: v for k, v in probe.items() if k not in ("turn", "centre")}
+    out["turns"] = turns
+    out["ambiguous"] = probe["ratio"] < AMBIGUOUS_BELOW
+    if out["ambiguous"]:
         names = ("longest", "middle", "shortest")
         warnings.warn(
             f"the shapes hardly constrain a {abs(probe['angle_deg']):.0f}-degree turn about the target's "
             f"{names[probe['axis']]} principal axis (misfit ratio {probe['ratio']:.2f}, below "
             f"{AMBIGUOUS_BELOW}): the map may be turned about that axis; give two or three "
-            "landmark pairs (MatchOptions.landmarks, or --landmarks on the command line) to fix it", AmbiguousMatchWarning, stacklevel=3)
-    return probe
+            "landmark pairs (MatchOptions.landmarks, or --landmarks on the command line) to fix it",
+            AmbiguousMatchWarning, stacklevel=3)
+    return cand, out
 
 
 def _confidence(points: np.ndarray, roundtrip: np.ndarray, width: float = 0.05) -> np.ndarray:
@@ -276,9 +301,11 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     lowest unsupervised energy (robust pose residual, round-trip error,
     descriptor disagreement, landmark distance) is extended to all vertices.
     Finally a probe turns the chosen pose by ±30 degrees about each principal
-    axis and refits: if the shapes barely resist a turn (a near-round cross
-    section, say), an :class:`AmbiguousMatchWarning` says so and
-    ``info["rotation_ambiguity"]`` records it; landmark pairs fix such a map.
+    axis and refits an affine map: a turn that fits clearly better is adopted
+    and refined again (the pose search had stopped in a local minimum, as
+    anisotropic growth can cause); if the shapes barely resist a turn (a
+    near-round cross section, say), an :class:`AmbiguousMatchWarning` says so
+    and ``info["rotation_ambiguity"]`` records it; landmark pairs fix such a map.
 
     Parameters
     ----------
@@ -306,8 +333,8 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         if opts.intrinsic_candidate:
             starts.append(_intrinsic_start(src, tgt, opts))
         k_mid = min(opts.zoomout_mid, opts.n_eigen)
-        coarse = [_stage(src, tgt, c, range(opts.zoomout_start, k_mid + 1, opts.zoomout_step), opts)
-                  for c in starts]
+        ks_coarse = range(opts.zoomout_start, k_mid + 1, opts.zoomout_step)
+        coarse = [_stage(src, tgt, c, ks_coarse, opts) for c in starts]
         coarse_e = [_energy(src, tgt, c)["total"] for c in coarse]
         timings["coarse"] = time.perf_counter() - t0 - timings["prepare"]
         keep = np.argsort(coarse_e)[: opts.n_finalists]
@@ -318,14 +345,16 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         energies = [_energy(src, tgt, c) for c in candidates]
         best = int(np.argmin([e["total"] for e in energies]))
         timings["fine"] = time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
-        ambiguity = _ambiguity(src, tgt, candidates[best]) if opts.check_ambiguity else None
-        t2s, s2t = _extend(src, tgt, candidates[best], opts)
+        chosen, ambiguity = _settle(src, tgt, candidates[best], opts, ks_coarse, ks)
+        timings["turn_probe"] = (time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
+                                 - timings["fine"])
+        t2s, s2t = _extend(src, tgt, chosen, opts)
         # the reported functional map: from the final full-resolution map, M-weighted
         # (C = Φ_tᵀ M_t Π Φ_s, Ovsjanikov et al. 2012), in the unit-area bases
         C = tgt.phi.T @ (tgt.spectral.mass[:, None] * src.phi[t2s])
     timings["total"] = time.perf_counter() - t0
     info = {
-        "route": candidates[best]["route"],
+        "route": chosen["route"],
         "coarse_energies": [float(e) for e in coarse_e],
         "candidates": [{"route": c["route"], **e} for c, e in zip(candidates, energies)],
         "chosen": best,
