@@ -20,6 +20,7 @@ eigenbases (computed afresh for every pair) and are inflated when other
 processes share the machine.
 
 Usage: python benchmarks/bench_match.py [--quick | --seeds S] [--n 3000] [--large] [--poses N]
+       [--intrinsic]
 """
 from __future__ import annotations
 
@@ -109,6 +110,32 @@ def pose_sweep(n_vertices: int, n_poses: int) -> None:
     print(f"largest spread of the error over poses: {max(spread):.2e}")
 
 
+def intrinsic_route(pairs) -> None:
+    """Error of the descriptor-only (intrinsic) candidate, refined, with and without patch descriptors."""
+    from surfacekit.correspondence import solver as S
+
+    print("\nintrinsic route alone (functional map from descriptors, then ZoomOut), per pair:")
+    res = {False: [], True: []}
+    for pair in pairs:
+        line = f"  {pair.name:32s}"
+        for patches in (False, True):
+            opts = sk.MatchOptions(patch_descriptors=patches)
+            src = S._prepare(fresh(pair.source), opts, 0, 0)
+            tgt = S._prepare(fresh(pair.target), opts, 1, 1)
+            t0 = time.perf_counter()
+            cand = S._intrinsic_start(src, tgt, opts)
+            cand = S._stage(src, tgt, S._stage(src, tgt, cand, range(6, 21, 4), opts), range(24, 61, 4), opts)
+            s2t = S._extend(src, tgt, cand, opts)[1]
+            res[patches].append(score(pair, s2t).mean())
+            line += f"  {'with' if patches else 'without'} patches: {res[patches][-1]:.4f} " \
+                    f"({time.perf_counter() - t0:.1f}s)"
+        print(line, flush=True)
+    for patches in (False, True):
+        v = np.array(res[patches])
+        print(f"{'with' if patches else 'without'} patch descriptors: mean {v.mean():.4f}, "
+              f"median {np.median(v):.4f}, pairs above 0.06: {int(np.sum(v > 0.06))}/{len(v)}")
+
+
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--quick", action="store_true", help="one seed instead of two")
@@ -116,6 +143,8 @@ def main(argv=None) -> None:
     ap.add_argument("--n", type=int, default=3000, help="source vertex count (target gets 1.2x)")
     ap.add_argument("--large", action="store_true", help="also time 8k-vertex pairs")
     ap.add_argument("--poses", type=int, default=0, help="also match 4 pairs in this many random poses each")
+    ap.add_argument("--intrinsic", action="store_true",
+                    help="also score the intrinsic route alone, with and without patch descriptors")
     ap.add_argument("--only", default=None, help="run only this method")
     args = ap.parse_args(argv)
     n_seeds = args.seeds or (1 if args.quick else 2)
@@ -167,6 +196,8 @@ def main(argv=None) -> None:
             print(f"  {name:32s} without landmarks {e0:.4f}   with 3 landmark pairs {e1:.4f}")
         if flagged:
             print(f"worst flagged pair with 3 landmarks: {max(e1 for _, _, e1 in flagged):.4f}")
+    if args.intrinsic:
+        intrinsic_route(pairs)
     if args.poses:
         pose_sweep(args.n, args.poses)
     if args.large:

@@ -153,3 +153,22 @@ def test_turn_probe_escapes_the_pose_pulled_off_by_anisotropic_growth():
     assert turned.info["rotation_ambiguity"]["turns"] >= 1
     assert error(stuck) > 0.06 and error(turned) < 0.04, (error(stuck), error(turned))
     assert not turned.info["rotation_ambiguity"]["ambiguous"]
+
+
+def test_curvature_patch_descriptors_are_rigid_and_order_invariant():
+    """Patch descriptors of mean curvature on a rotated, vertex-permuted copy equal the
+    original's, vertex by vertex (intrinsic quantities; common practice)."""
+    from surfacekit.correspondence.fmap import curvature_patch_descriptors
+
+    a, _ = sk.synthetic.organ_surface("kidney", 800, seed=2)
+    rng = np.random.default_rng(0)
+    perm = rng.permutation(a.n_vertices)
+    inv = np.empty_like(perm)
+    inv[perm] = np.arange(len(perm))
+    b = sk.Surface(a.vertices[perm] @ sk.synthetic.random_rotation(4).T + 7.0, inv[a.faces])
+    da = curvature_patch_descriptors(SpectralShape.from_basis(a, sk.eigenbasis(a, 10)))
+    db = curvature_patch_descriptors(SpectralShape.from_basis(b, sk.eigenbasis(b, 10)))
+    assert da.shape == (a.n_vertices, 12) and np.all(np.isfinite(da))
+    np.testing.assert_allclose(db, da[perm], atol=1e-8 * np.abs(da).max())
+    corr = sk.match(a, b, sk.MatchOptions(patch_descriptors=True, check_ambiguity=False))
+    assert np.mean(corr.source_to_target[perm] == np.arange(a.n_vertices)) > 0.95

@@ -48,6 +48,22 @@ def spectral_descriptors(shape: SpectralShape, basis: Eigenbasis, n_wks: int = 1
     return d / np.sqrt(shape.mass @ d**2)[None, :]
 
 
+def curvature_patch_descriptors(shape: SpectralShape) -> np.ndarray:
+    """Geodesic polar patch descriptors of the scale-free mean curvature ``H √area``, (n, 12).
+
+    :func:`surfacekit.patch_descriptors` (polar soft bins, angular Fourier moduli)
+    with its default radius; each column rescaled to unit M-norm on the unit-area
+    surface, NaN (rings without finite values, e.g. at a boundary) set to 0.
+    """
+    from ..curvature import mean_curvature
+    from ..patches import patch_descriptors
+
+    s = shape.surface
+    d = patch_descriptors(s, mean_curvature(s) * np.sqrt(s.area))
+    d = np.where(np.isfinite(d), d, 0.0)
+    return d / np.maximum(np.sqrt(shape.mass @ d**2), 1e-300)[None, :]
+
+
 def landmark_descriptors(shape: SpectralShape, vertices: np.ndarray, k: int = 60,
                          times=(0.1, 0.4, 1.6)) -> np.ndarray:
     """Heat kernel maps centred at landmark vertices, (n, len(vertices) * len(times)).

@@ -45,6 +45,9 @@ class MatchOptions:
     intrinsic_candidate : bool, default True
         Also build a candidate from descriptors alone (functional map with
         Laplacian, descriptor-commutativity and orientation terms).
+    patch_descriptors : bool, default False
+        Add geodesic polar patch descriptors of the mean curvature to the
+        intrinsic candidate's descriptors (about 0.5 s per 1000 vertices).
     intrinsic_k : int, default 24
         Size of the descriptor-based functional map.
     icp_iterations : int, default 20
@@ -86,6 +89,7 @@ class MatchOptions:
     affine: bool = True
     bijective: bool = True
     intrinsic_candidate: bool = True
+    patch_descriptors: bool = False
     intrinsic_k: int = 24
     icp_iterations: int = 20
     scaling: bool = False

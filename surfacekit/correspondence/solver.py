@@ -14,7 +14,13 @@ from ..operators import eigenbasis
 from ..surface import Surface, SurfaceError
 from . import extrinsic as ex
 from .ambiguity import AMBIGUOUS_BELOW, TURN_BELOW, AmbiguousMatchWarning, rotation_ambiguity
-from .fmap import SpectralShape, estimate_fmap, landmark_descriptors, spectral_descriptors
+from .fmap import (
+    SpectralShape,
+    curvature_patch_descriptors,
+    estimate_fmap,
+    landmark_descriptors,
+    spectral_descriptors,
+)
 from .options import MatchOptions
 from .result import Correspondence
 from .sampling import farthest_points
@@ -181,6 +187,9 @@ def _intrinsic_start(src: _Shape, tgt: _Shape, opts: MatchOptions) -> dict:
     """Initial candidate from descriptors alone; its pose is then fitted to the map (Kabsch)."""
     k = min(opts.intrinsic_k, src.phi.shape[1], tgt.phi.shape[1])
     desc_s, desc_t = src.desc, tgt.desc
+    if opts.patch_descriptors:  # local geometry around each vertex, not only spectral signatures
+        desc_s = np.hstack([desc_s, curvature_patch_descriptors(src.spectral)])
+        desc_t = np.hstack([desc_t, curvature_patch_descriptors(tgt.spectral)])
     if len(src.landmarks):  # landmark pairs enter the functional map as heat-kernel descriptors
         desc_s = np.hstack([landmark_descriptors(src.spectral, src.lm_vertices), desc_s])
         desc_t = np.hstack([landmark_descriptors(tgt.spectral, tgt.lm_vertices), desc_t])
