@@ -16,6 +16,7 @@ import socket
 import sys
 import time
 import traceback
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -129,7 +130,10 @@ def _compute(task: SubjectTask, timings: dict):
     timings["descriptors"] = time.perf_counter() - tic
 
     tic = time.perf_counter()
-    corr = sk.match(template, subject, seed=opts["seed"])
+    with warnings.catch_warnings():  # recorded in the table instead of printed per subject
+        warnings.simplefilter("ignore", sk.AmbiguousMatchWarning)
+        corr = sk.match(template, subject, seed=opts["seed"])
+    probe = corr.info.get("rotation_ambiguity") or {}
     timings["match"] = time.perf_counter() - tic
 
     tic = time.perf_counter()
@@ -162,6 +166,8 @@ def _compute(task: SubjectTask, timings: dict):
         "spectral_distance": spectral_distance,
         "mean_match_confidence": (float(np.mean(fields["match_confidence"]))
                                   if "match_confidence" in fields else None),
+        # 1: the shapes barely fix a turn of the map (sk.AmbiguousMatchWarning); check this subject
+        "match_turn_ambiguous": int(bool(probe.get("ambiguous"))) if probe else None,
     }
     return subject, fields, scalars
 

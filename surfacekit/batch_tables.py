@@ -21,7 +21,8 @@ from .io import atomic_path, npz_member
 
 SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "volume_change_ml",
                   "mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
-                  "mean_log_area_ratio", "spectral_distance", "mean_match_confidence")
+                  "mean_log_area_ratio", "spectral_distance", "mean_match_confidence",
+                  "match_turn_ambiguous")
 VERTEX_FIELDS = ("normal_displacement", "log_area_ratio")
 
 
