@@ -162,6 +162,10 @@ def _map_summary(corr) -> dict:
     amb = info.get("rotation_ambiguity")
     if amb:  # the shapes leave a turn of the map open (see sk.AmbiguousMatchWarning)
         out["rotation_ambiguous"] = bool(amb["ambiguous"])
+        if amb["ambiguous"]:
+            axis = ("longest", "middle", "shortest")[amb["axis"]]
+            out["rotation_note"] = (f"the shapes barely fix a turn about the target's {axis} axis; "
+                                    "the map may be turned: give 2-3 landmark pairs (--landmarks)")
     n_lm = len((info.get("options") or {}).get("landmarks") or ())
     if n_lm:
         out["landmark_pairs"] = n_lm

@@ -172,3 +172,19 @@ def test_curvature_patch_descriptors_are_rigid_and_order_invariant():
     np.testing.assert_allclose(db, da[perm], atol=1e-8 * np.abs(da).max())
     corr = sk.match(a, b, sk.MatchOptions(patch_descriptors=True, check_ambiguity=False))
     assert np.mean(corr.source_to_target[perm] == np.arange(a.n_vertices)) > 0.95
+
+
+def test_command_line_reports_an_undetermined_turn(tmp_path, capsys):
+    """On the round-sectioned ventricle the command warns in one stderr line and says so
+    in its summary; the map is still written."""
+    p = make_pair("ventricle", "growth", n_source=900, n_target=1000, seed=3)
+    sk.save(p.source, tmp_path / "a.ply")
+    sk.save(p.target, tmp_path / "b.ply")
+    code = cli.main([str(x) for x in ("match", tmp_path / "a.ply", tmp_path / "b.ply", "-o",
+                                      tmp_path / "m.npz", "--json")])
+    out = capsys.readouterr()
+    assert code == 0 and (tmp_path / "m.npz").exists()
+    summary = json.loads(out.out)
+    assert summary["rotation_ambiguous"] is True and "--landmarks" in summary["rotation_note"]
+    warn = [line for line in out.err.splitlines() if line.strip()]
+    assert len(warn) == 1 and warn[0].startswith("surfacekit: warning:") and "landmark" in warn[0]
