@@ -242,6 +242,8 @@ def _change(ctx: Context) -> dict:
     out = ctx.outputs.claim(a.output, directory=True)
     base, follow = load_surface(a.baseline, "baseline"), load_surface(a.followup, "follow-up")
     corr = None
+    if a.map and a.landmarks:
+        raise InputError("--landmarks has no effect with --map (the map is already made); give one of them")
     if a.map:
         corr = sk.Correspondence.load(existing(a.map, "map"))
         if len(corr.source_to_target) != base.n_vertices or len(corr.target_to_source) != follow.n_vertices:
