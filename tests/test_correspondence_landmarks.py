@@ -188,3 +188,17 @@ def test_command_line_reports_an_undetermined_turn(tmp_path, capsys):
     assert summary["rotation_ambiguous"] is True and "--landmarks" in summary["rotation_note"]
     warn = [line for line in out.err.splitlines() if line.strip()]
     assert len(warn) == 1 and warn[0].startswith("surfacekit: warning:") and "landmark" in warn[0]
+
+
+def test_exact_symmetry_of_an_ellipsoid_is_reported_as_a_possible_flip():
+    """A triaxial ellipsoid is carried onto itself by the 180-degree turns about its axes
+    (elementary geometry), so a remeshed, rotated copy has several equally good maps: the
+    flipped finalist's energy ties with the winner's and the solver warns."""
+    a = sk.synthetic.ellipsoid((50, 30, 20), 1500, seed=1, jitter=0.3)
+    b = sk.synthetic.ellipsoid((50, 30, 20), 1800, seed=2, jitter=0.3)
+    b = sk.Surface(b.vertices @ sk.synthetic.random_rotation(5).T, b.faces)
+    with pytest.warns(sk.AmbiguousMatchWarning, match="flipped"):
+        corr = sk.match(a, b)
+    amb = corr.info["rotation_ambiguity"]
+    assert amb["ambiguous"] and amb["turns"] == 0
+    assert amb["rival"]["angle_deg"] > 170 and amb["rival"]["energy_ratio"] < 1.05

@@ -14,6 +14,14 @@ AMBIGUOUS_BELOW = 1.2
 #: fits clearly better means the pose search stopped in a local minimum (seen on organs grown
 #: anisotropically, whose stretched shape pulls the rigid fit 20-30 degrees off).
 TURN_BELOW = 0.8
+#: a turn is only tried while the affine misfit exceeds this multiple of the smooth non-rigid
+#: fit's misfit.  Measured: 2.5-3.7 on the benchmark pairs whose turn fixed the map, 1.35 on an
+#: exactly remeshed ellipsoid, where affine fits in every pose are equally good.
+ROOM_ABOVE = 2.0
+#: energy ratio within which a finalist turned by more than 25 degrees (usually a 180-degree
+#: flip) counts as an equally good rival.  Measured on the benchmark pairs: 1.007-1.044 on the
+#: ventricle pairs where flip and truth tie, 1.07-2.6 where the chosen map is right.
+RIVAL_WITHIN = 1.05
 
 
 class AmbiguousMatchWarning(UserWarning):

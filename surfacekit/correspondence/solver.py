@@ -13,7 +13,14 @@ from scipy.spatial import cKDTree
 from ..operators import eigenbasis
 from ..surface import Surface, SurfaceError
 from . import extrinsic as ex
-from .ambiguity import AMBIGUOUS_BELOW, TURN_BELOW, AmbiguousMatchWarning, rotation_ambiguity
+from .ambiguity import (
+    AMBIGUOUS_BELOW,
+    RIVAL_WITHIN,
+    ROOM_ABOVE,
+    TURN_BELOW,
+    AmbiguousMatchWarning,
+    rotation_ambiguity,
+)
 from .fmap import (
     SpectralShape,
     curvature_patch_descriptors,
@@ -250,23 +257,49 @@ def _probe(src: _Shape, tgt: _Shape, cand: dict) -> dict:
                               tgt.points, tgt.surface.vertex_normals, tgt.weights)
 
 
-def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse, ks_fine):
+def _rival(candidates: list, energies: list, best: int) -> dict | None:
+    """The best other finalist whose pose differs from the winner's by more than 25 degrees:
+    its energy relative to the winner's, and the angle between the poses."""
+    out = None
+    for i, (c, e) in enumerate(zip(candidates, energies)):
+        angle = float(np.degrees(ex.rotation_angle(c["pose"][0] @ candidates[best]["pose"][0].T)))
+        ratio = e / max(energies[best], 1e-300)
+        if i != best and angle > 25.0 and (out is None or ratio < out["energy_ratio"]):
+            out = {"energy_ratio": float(ratio), "angle_deg": angle}
+    return out
+
+
+def _floor(tgt: _Shape, cand: dict) -> float:
+    """Mean point-to-plane misfit of the candidate's smoothly deformed source: what the
+    deformation model can reach from its pose."""
+    return float(np.mean(ex.plane_distances(cand["coords"], tgt.tree, tgt.points, tgt.surface.vertex_normals)))
+
+
+def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse, ks_fine,
+            rival: dict | None = None):
     """Turn the chosen candidate while a turned pose fits clearly better, then judge ambiguity.
 
     The rotation probe (:func:`rotation_ambiguity`) turns the pose by ±30 degrees
     about each principal axis and refits an affine map.  If a turn lowers the
-    misfit below `TURN_BELOW` times the current one, the pose search had stopped
-    in a local minimum: the candidate is rebuilt from the turned pose and probed
-    again (at most `opts.max_turns` times).  If the final pose's best turn is
-    within `AMBIGUOUS_BELOW` of its misfit, the shapes do not fix that rotation:
-    an :class:`AmbiguousMatchWarning` is issued.  Skipped (None) with two or
-    more landmark pairs, which fix any rotation.  Returns ``(candidate, probe)``.
+    misfit below `TURN_BELOW` times the current one, while the current affine
+    misfit is more than `ROOM_ABOVE` times what the smooth non-rigid deformation
+    reaches (so there is room to improve; on an exact remesh the affine fit is
+    already at that floor and a turn only trades noise), the pose search had
+    stopped in a local minimum: the candidate is rebuilt from the turned pose and
+    probed again (at most `opts.max_turns` times).  If the final pose's best turn is
+    within `AMBIGUOUS_BELOW` of its misfit, the shapes do not fix that rotation;
+    likewise if the `rival` finalist, turned by more than 25 degrees from the
+    winner of the candidate energy (typically a 180-degree flip), has an energy
+    within `RIVAL_WITHIN` of the winner's.
+    Either way an :class:`AmbiguousMatchWarning` is issued.  Skipped (None) with
+    two or more landmark pairs, which fix any rotation.  Returns
+    ``(candidate, probe)``.
     """
     if len(src.landmarks) >= 2 or not opts.check_ambiguity:
         return cand, None
     probe = _probe(src, tgt, cand)
     turns = 0
-    while probe["ratio"] < TURN_BELOW and turns < opts.max_turns:
+    while probe["ratio"] < TURN_BELOW and turns < opts.max_turns and probe["misfit"] > ROOM_ABOVE * _floor(tgt, cand):
         R, t, s = cand["pose"]
         turn, c = probe["turn"], probe["centre"]
         cand = _deformed_start(src, tgt, cand["route"] + "+turn", turn @ R, turn @ (t - c) + c, s, opts)
@@ -275,8 +308,16 @@ def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse,
         turns += 1
     out = {k: v for k, v in probe.items() if k not in ("turn", "centre")}
     out["turns"] = turns
-    out["ambiguous"] = probe["ratio"] < AMBIGUOUS_BELOW
-    if out["ambiguous"]:
+    out["rival"] = rival
+    flip = out["rival"] is not None and out["rival"]["energy_ratio"] < RIVAL_WITHIN
+    out["ambiguous"] = bool(probe["ratio"] < AMBIGUOUS_BELOW or flip)
+    if flip:
+        warnings.warn(
+            f"an alternative map turned by {out['rival']['angle_deg']:.0f} degrees fits almost as well "
+            f"(energy ratio {out['rival']['energy_ratio']:.3f}, below {RIVAL_WITHIN}): the map may be "
+            "flipped; give two or three landmark pairs (MatchOptions.landmarks, or --landmarks on the "
+            "command line) to fix it", AmbiguousMatchWarning, stacklevel=3)
+    elif out["ambiguous"]:
         names = ("longest", "middle", "shortest")
         warnings.warn(
             f"the shapes hardly constrain a {abs(probe['angle_deg']):.0f}-degree turn about the target's "
@@ -354,7 +395,8 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         energies = [_energy(src, tgt, c) for c in candidates]
         best = int(np.argmin([e["total"] for e in energies]))
         timings["fine"] = time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
-        chosen, ambiguity = _settle(src, tgt, candidates[best], opts, ks_coarse, ks)
+        chosen, ambiguity = _settle(src, tgt, candidates[best], opts, ks_coarse, ks,
+                                    _rival(candidates, [e["total"] for e in energies], best))
         timings["turn_probe"] = (time.perf_counter() - t0 - timings["prepare"] - timings["coarse"]
                                  - timings["fine"])
         t2s, s2t = _extend(src, tgt, chosen, opts)
