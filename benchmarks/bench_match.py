@@ -172,7 +172,9 @@ def main(argv=None) -> None:
                 if amb.get("ambiguous"):
                     e_lm = score(pair, with_landmarks(pair)).mean()
                     flagged.append((pair.name, float(e.mean()), float(e_lm)))
-                    line.append(f"[ambiguous {amb['ratio']:.2f}; 3 landmarks: {e_lm:.4f}]")
+                    rival = amb.get("rival") or {}
+                    line.append(f"[ambiguous: turn ratio {amb['ratio']:.2f}, flip ratio "
+                                f"{rival.get('energy_ratio', float('nan')):.3f}; 3 landmarks: {e_lm:.4f}]")
                 else:
                     unflagged.append((pair.name, float(e.mean())))
         print("  ".join(line), flush=True)
