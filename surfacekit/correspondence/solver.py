@@ -263,13 +263,14 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     SIGGRAPH Asia 2019) on well-spread vertex samples, with the deformed
     coordinates appended to the spectral embeddings.  The candidate with the
     lowest unsupervised energy (robust pose residual, round-trip error,
-    descriptor disagreement, landmark distance) is extended to all vertices.
-    Finally a probe turns the chosen pose by ±30 degrees about each principal
-    axis and refits an affine map: a turn that fits clearly better is adopted
-    and refined again (the pose search had stopped in a local minimum, as
-    anisotropic growth can cause); if the shapes barely resist a turn (a
-    near-round cross section, say), an :class:`AmbiguousMatchWarning` says so
-    and ``info["rotation_ambiguity"]`` records it; landmark pairs fix such a map.
+    descriptor disagreement, landmark distance) wins.  A probe then turns its
+    pose by ±30 degrees about each principal axis and refits an affine map: a
+    turn that fits clearly better is adopted and refined again (the pose search
+    had stopped in a local minimum, as anisotropic growth can cause); if the
+    shapes barely resist a turn (a near-round cross section, say), or a flipped
+    finalist's energy ties with the winner's, an :class:`AmbiguousMatchWarning`
+    says so and ``info["rotation_ambiguity"]`` records it; landmark pairs fix
+    such a map.  The result is extended to all vertices.
 
     Parameters
     ----------
@@ -285,7 +286,7 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     Correspondence
         ``source_to_target`` (n_source,), ``target_to_source`` (n_target,), the
         functional map (k, k), confidence in [0, 1] per vertex, ``info`` with the
-        route chosen, candidate energies and timings (s).
+        route chosen, candidate energies, the rotation probe and timings (s).
     """
     opts = _check_inputs(source, target, options)
     t0 = time.perf_counter()
