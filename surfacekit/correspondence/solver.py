@@ -88,7 +88,8 @@ def _deformed_start(src: _Shape, tgt: _Shape, route: str, R, t, s, opts: MatchOp
     A = np.zeros((0, 3))
     if opts.deform_k > 0:
         sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
-        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes, anchors=anchors)
+        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes, anchors=anchors,
+                                     tgt_normals=tgt.surface.vertex_normals[tgt.samples])
     coords = moved + src.sphi[:, :len(A)] @ A
     t2s = nearest_rows(tgt.sp, coords)
     t2s[tgt.lm_rows] = src.lm_rows
@@ -183,10 +184,21 @@ def _rival(candidates: list, energies: list, best: int) -> dict | None:
     return out
 
 
-def _floor(tgt: _Shape, cand: dict) -> float:
-    """Mean point-to-plane misfit of the candidate's smoothly deformed source: what the
-    deformation model can reach from its pose."""
-    return float(np.mean(ex.plane_distances(cand["coords"], tgt.tree, tgt.points, tgt.surface.vertex_normals)))
+def _floor(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions) -> float:
+    """Mean point-to-plane misfit reached by a smooth point-to-point non-rigid ICP from the
+    candidate's affine pose: the scale of misfit that the deformation model leaves.
+
+    (Point-to-point on purpose: its pull towards sample positions keeps this floor
+    at the sampling's own misfit, which is what the turn gate compares against; the
+    thresholds were measured with it.)
+    """
+    R, t, s = cand["pose"]
+    Aff, b = cand["affine"]
+    moved = (s * src.sp @ R.T + t) @ Aff.T + b
+    sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
+    D = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes) if opts.deform_k else None
+    y = moved if D is None else moved + src.sphi[:, :len(D)] @ D
+    return float(np.mean(ex.plane_distances(y, tgt.tree, tgt.points, tgt.surface.vertex_normals)))
 
 
 def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse, ks_fine,
@@ -213,7 +225,7 @@ def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse,
         return cand, None
     probe = _probe(src, tgt, cand)
     turns = 0
-    while probe["ratio"] < TURN_BELOW and turns < opts.max_turns and probe["misfit"] > ROOM_ABOVE * _floor(tgt, cand):
+    while probe["ratio"] < TURN_BELOW and turns < opts.max_turns and probe["misfit"] > ROOM_ABOVE * _floor(src, tgt, cand, opts):
         R, t, s = cand["pose"]
         turn, c = probe["turn"], probe["centre"]
         cand = _deformed_start(src, tgt, cand["route"] + "+turn", turn @ R, turn @ (t - c) + c, s, opts)
