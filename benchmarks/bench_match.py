@@ -139,7 +139,8 @@ def intrinsic_route(pairs) -> None:
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--quick", action="store_true", help="one seed instead of two")
-    ap.add_argument("--seeds", type=int, default=None, help="number of seeds (default 2; 1 with --quick)")
+    ap.add_argument("--seeds", type=int, default=None,
+                    help="number of seeds (default 2; 1 with --quick; 0 to skip the pair table)")
     ap.add_argument("--n", type=int, default=3000, help="source vertex count (target gets 1.2x)")
     ap.add_argument("--large", action="store_true", help="also time 8k-vertex pairs")
     ap.add_argument("--poses", type=int, default=0, help="also match 4 pairs in this many random poses each")
@@ -147,7 +148,7 @@ def main(argv=None) -> None:
                     help="also score the intrinsic route alone, with and without patch descriptors")
     ap.add_argument("--only", default=None, help="run only this method")
     args = ap.parse_args(argv)
-    n_seeds = args.seeds or (1 if args.quick else 2)
+    n_seeds = args.seeds if args.seeds is not None else (1 if args.quick else 2)
     pairs = benchmark_pairs(args.n, int(1.2 * args.n), seeds=tuple(range(n_seeds)))
     methods = {k: v for k, v in METHODS.items() if args.only in (None, k)}
     errs = {m: [] for m in methods}
@@ -178,6 +179,17 @@ def main(argv=None) -> None:
                 else:
                     unflagged.append((pair.name, float(e.mean())))
         print("  ".join(line), flush=True)
+    if pairs:
+        summarise(args, pairs, methods, errs, times, worst, flagged, unflagged)
+    if args.intrinsic:
+        intrinsic_route(pairs)
+    if args.poses:
+        pose_sweep(args.n, args.poses)
+    if args.large:
+        large_pairs()
+
+
+def summarise(args, pairs, methods, errs, times, worst, flagged, unflagged) -> None:
     print(f"\n{len(pairs)} pairs, ~{args.n} / {int(1.2 * args.n)} vertices; "
           "normalised geodesic error (mean over pairs of per-pair mean; p95 over all points)")
     print(f"{'method':12s} {'mean':>8s} {'p95':>8s} {'worst pair mean':>16s}  {'median time':>11s}")
@@ -198,22 +210,21 @@ def main(argv=None) -> None:
             print(f"  {name:32s} without landmarks {e0:.4f}   with 3 landmark pairs {e1:.4f}")
         if flagged:
             print(f"worst flagged pair with 3 landmarks: {max(e1 for _, _, e1 in flagged):.4f}")
-    if args.intrinsic:
-        intrinsic_route(pairs)
-    if args.poses:
-        pose_sweep(args.n, args.poses)
-    if args.large:
-        t = []
-        for seed, kind in enumerate(("kidney", "liver", "ventricle")):
-            p = make_pair(kind, "mixed", n_source=8000, n_target=8000, seed=seed)
-            t0 = time.perf_counter()
-            s2t = surfacekit_match(fresh(p.source), fresh(p.target))
-            t.append(time.perf_counter() - t0)
-            amb = (LAST_INFO.get("rotation_ambiguity") or {}).get("ambiguous")
-            print(f"8k {p.name}: {t[-1]:.2f}s, error {score(p, s2t).mean():.4f}"
-                  + ("  [flagged ambiguous]" if amb else ""), flush=True)
-        print(f"median time for 8k-vertex pairs, eigenbases included: {np.median(t):.2f}s "
-              "(goal <= 10 s on 2 cores; machine shared)")
+
+
+def large_pairs() -> None:
+    """Time sk.match on three 8k-vertex pairs, eigenbases included."""
+    t = []
+    for seed, kind in enumerate(("kidney", "liver", "ventricle")):
+        p = make_pair(kind, "mixed", n_source=8000, n_target=8000, seed=seed)
+        t0 = time.perf_counter()
+        s2t = surfacekit_match(fresh(p.source), fresh(p.target))
+        t.append(time.perf_counter() - t0)
+        amb = (LAST_INFO.get("rotation_ambiguity") or {}).get("ambiguous")
+        print(f"8k {p.name}: {t[-1]:.2f}s, error {score(p, s2t).mean():.4f}"
+              + ("  [flagged ambiguous]" if amb else ""), flush=True)
+    print(f"median time for 8k-vertex pairs, eigenbases included: {np.median(t):.2f}s "
+          "(goal <= 10 s on 2 cores; machine shared)")
 
 
 if __name__ == "__main__":
