@@ -124,7 +124,9 @@ def intrinsic_route(pairs) -> None:
             tgt = S._prepare(fresh(pair.target), opts, 1, 1)
             t0 = time.perf_counter()
             cand = S._intrinsic_start(src, tgt, opts)
-            cand = S._stage(src, tgt, S._stage(src, tgt, cand, range(6, 21, 4), opts), range(24, 61, 4), opts)
+            mid, step = opts.zoomout_mid, opts.zoomout_step  # the solver's coarse and fine steps
+            cand = S._stage(src, tgt, cand, range(opts.zoomout_start, mid + 1, step), opts)
+            cand = S._stage(src, tgt, cand, range(mid + step, opts.n_eigen + 1, step), opts)
             s2t = S._extend(src, tgt, cand, opts)[1]
             res[patches].append(score(pair, s2t).mean())
             line += f"  {'with' if patches else 'without'} patches: {res[patches][-1]:.4f} " \

@@ -163,12 +163,9 @@ def _map_summary(corr) -> dict:
     if amb:  # the shapes leave a turn of the map open (see sk.AmbiguousMatchWarning)
         out["rotation_ambiguous"] = bool(amb["ambiguous"])
         if amb["ambiguous"]:
-            from .correspondence.ambiguity import RIVAL_WITHIN
-
             axis = ("longest", "middle", "shortest")[amb["axis"]]
-            rival = amb.get("rival")
-            if rival and rival["energy_ratio"] < RIVAL_WITHIN:
-                what = f"a map turned by {rival['angle_deg']:.0f} degrees fits almost as well"
+            if amb["flip"]:
+                what = f"a map turned by {amb['rival']['angle_deg']:.0f} degrees fits almost as well"
             else:
                 what = f"the shapes barely fix a turn about the target's {axis} axis"
             out["rotation_note"] = f"{what}; the map may be turned: give 2-3 landmark pairs (--landmarks)"

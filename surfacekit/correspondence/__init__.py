@@ -9,8 +9,8 @@ from .options import MatchOptions
 from .result import Correspondence, load_landmarks, save_landmarks
 from .solver import match
 
-__all__ = ["AmbiguousMatchWarning", "Correspondence", "MatchOptions", "geodesic_error", "load_landmarks", "map_quality", "match",
-           "save_landmarks"]
+__all__ = ["AmbiguousMatchWarning", "Correspondence", "MatchOptions", "geodesic_error", "load_landmarks",
+           "map_quality", "match", "save_landmarks"]
 
 
 def __getattr__(name: str):

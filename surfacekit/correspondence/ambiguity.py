@@ -28,36 +28,28 @@ class AmbiguousMatchWarning(UserWarning):
     """The shapes leave a rotation of the map undetermined; landmark pairs would fix it."""
 
 
-def _nonrigid_misfit(moved: np.ndarray, phi: np.ndarray, values: np.ndarray, tgt_samples: np.ndarray,
-                     tgt_tree, tgt_points: np.ndarray, tgt_normals: np.ndarray, deform_k: int) -> float:
-    """Mean point-to-plane distance after affine ICP and smooth non-rigid ICP of `moved` onto the target."""
+def _affine_misfit(moved: np.ndarray, tgt_samples: np.ndarray, tgt_tree, tgt_points: np.ndarray,
+                   tgt_normals: np.ndarray) -> float:
+    """Mean point-to-plane distance after affine ICP of `moved` onto the target."""
     A, b = ex.affine_icp(moved, tgt_samples, iterations=6)
-    y = moved @ A.T + b
-    if deform_k > 0:
-        sizes = [k for k in (3, 6, 10, 16, 24) if k < deform_k] + [deform_k]
-        D = ex.spectral_nonrigid_icp(y, phi, values, tgt_samples, sizes=sizes, iterations=2)
-        y = y + phi[:, :len(D)] @ D
-    return float(np.mean(ex.plane_distances(y, tgt_tree, tgt_points, tgt_normals)))
+    return float(np.mean(ex.plane_distances(moved @ A.T + b, tgt_tree, tgt_points, tgt_normals)))
 
 
-def rotation_ambiguity(moved: np.ndarray, phi: np.ndarray, values: np.ndarray, tgt_samples: np.ndarray,
-                       tgt_tree, tgt_points: np.ndarray, tgt_normals: np.ndarray, tgt_weights: np.ndarray,
-                       *, angle_deg: float = 30.0, deform_k: int = 0) -> dict:
-    """How much worse the best non-rigid fit gets when the chosen pose is turned by ±`angle_deg`.
+def rotation_ambiguity(moved: np.ndarray, tgt_samples: np.ndarray, tgt_tree, tgt_points: np.ndarray,
+                       tgt_normals: np.ndarray, tgt_weights: np.ndarray, *, angle_deg: float = 30.0) -> dict:
+    """How much worse the best affine fit gets when the chosen pose is turned by ±`angle_deg`.
 
     The aligned source samples `moved` (p, 3) are rotated about each principal
     axis of the target (through its centroid) by ±angle; each rotated copy is
-    fitted to the target again by affine ICP (and, with `deform_k` > 0, smooth
-    spectral non-rigid ICP), and its mean point-to-plane misfit is compared with
-    that of the unrotated copy.  A ratio near 1 means the shapes give no cue
+    fitted to the target again by affine ICP, and its mean point-to-plane misfit
+    is compared with that of the unrotated copy.  A ratio near 1 means the shapes give no cue
     against that rotation: a roughly round cross-section, for example, leaves the
     roll about the long axis undetermined, and the map may be turned by such an
-    angle.  Landmark pairs fix it.  (With the smooth non-rigid step the probe is
-    too lenient: 24 eigenfunctions absorb a 30-degree turn of any organ, so the
-    default compares affine fits.)
+    angle.  Landmark pairs fix it.  (Affine fits only: a smooth non-rigid step
+    with 24 eigenfunctions absorbs a 30-degree turn of any organ, measured on the
+    benchmark organs, and would call everything ambiguous.)
 
-    phi (p, K), values (K,) source eigenvectors at the samples and unit-area
-    eigenvalues; tgt_samples (q, 3); tgt_tree/tgt_points/tgt_normals/tgt_weights:
+    tgt_samples (q, 3); tgt_tree/tgt_points/tgt_normals/tgt_weights:
     all target vertices (normalised units).  Returns ``{"ratio": min ratio,
     "axis": 0/1/2 (principal axis, largest variance first), "angle_deg",
     "misfit": unrotated misfit, "turn": (3, 3) rotation, "centre": (3,)}`` where
@@ -65,13 +57,13 @@ def rotation_ambiguity(moved: np.ndarray, phi: np.ndarray, values: np.ndarray, t
     """
     E = ex.principal_frame(tgt_points, tgt_weights)
     c = tgt_weights @ tgt_points / tgt_weights.sum()
-    args = (phi, values, tgt_samples, tgt_tree, tgt_points, tgt_normals, deform_k)
-    base = max(_nonrigid_misfit(moved, *args), 1e-12)
+    args = (tgt_samples, tgt_tree, tgt_points, tgt_normals)
+    base = max(_affine_misfit(moved, *args), 1e-12)
     best = (np.inf, -1, 0.0)
     for axis in range(3):
         for sign in (1.0, -1.0):
             Rr = Rotation.from_rotvec(np.deg2rad(sign * angle_deg) * E[:, axis]).as_matrix()
-            ratio = _nonrigid_misfit((moved - c) @ Rr.T + c, *args) / base
+            ratio = _affine_misfit((moved - c) @ Rr.T + c, *args) / base
             best = min(best, (ratio, axis, sign * angle_deg))
     turn = Rotation.from_rotvec(np.deg2rad(best[2]) * E[:, best[1]]).as_matrix()
     return {"ratio": float(best[0]), "axis": int(best[1]), "angle_deg": float(best[2]), "misfit": base,

@@ -43,6 +43,10 @@ class _Shape:
     def sdesc(self) -> np.ndarray:
         return self.desc[self.samples]
 
+    def plane_distances(self, points: np.ndarray) -> np.ndarray:
+        """Distance of each point (normalised units) to the tangent plane at its closest vertex, (p,)."""
+        return ex.plane_distances(points, self.tree, self.points, self.surface.vertex_normals)
+
 
 def _prepare(s: Surface, opts: MatchOptions, seed: int, side: int) -> _Shape:
     """`side` 0 for the source, 1 for the target (which column of the landmark pairs is ours)."""
@@ -57,11 +61,11 @@ def _prepare(s: Surface, opts: MatchOptions, seed: int, side: int) -> _Shape:
                   lm, lm[:, side], np.searchsorted(samples, lm[:, side]))
 
 
-def _anchors(src: _Shape, tgt_points: np.ndarray, opts: MatchOptions):
+def _anchors(src: _Shape, tgt: _Shape, opts: MatchOptions):
     """Landmark pairs as anchors for the extrinsic fits: source sample rows and target points."""
     if not len(src.landmarks):
         return None
-    return src.lm_rows, tgt_points, opts.landmark_weight
+    return src.lm_rows, tgt.points[tgt.lm_vertices], opts.landmark_weight
 
 
 def _check_inputs(source, target, options) -> MatchOptions:

@@ -64,31 +64,31 @@ def _coarse_poses(src: _Shape, tgt: _Shape, opts: MatchOptions, seed: int) -> li
 
 
 def _stage(src: _Shape, tgt: _Shape, cand: dict, ks, opts: MatchOptions) -> dict:
-    """Advance a candidate through ZoomOut steps `ks`, with coordinates following a smooth deformation."""
+    """Advance a candidate through ZoomOut steps `ks`, with its deformed coordinates as extra signals."""
     fixed = (tgt.lm_rows, src.lm_rows) if len(src.landmarks) else None
-    C, t2s, s2t, coords = zoomout(tgt.sphi, src.sphi, cand["t2s"], ks=ks, bijective=opts.bijective,
-                                  coords_t=tgt.sp, coords_s=cand["coords"], s2t=cand.get("s2t"),
-                                  coord_weight=opts.coordinate_weight, fixed=fixed)
-    return {**cand, "C": C, "t2s": t2s, "s2t": s2t, "coords": coords}
+    C, t2s, s2t = zoomout(tgt.sphi, src.sphi, cand["t2s"], ks=ks, bijective=opts.bijective,
+                          coords_t=tgt.sp, coords_s=cand["coords"], s2t=cand.get("s2t"),
+                          coord_weight=opts.coordinate_weight, fixed=fixed)
+    return {**cand, "C": C, "t2s": t2s, "s2t": s2t}
 
 
 def _extrinsic_start(src: _Shape, tgt: _Shape, pose, opts: MatchOptions) -> dict:
     """Initial candidate from a rigid pose: ICP on the samples, then closest points."""
     R, t, s, _rms = ex.icp(src.sp, tgt.sp, pose[0], iterations=opts.icp_iterations,
-                          scaling=opts.scaling, anchors=_anchors(src, tgt.points[tgt.lm_vertices], opts))
+                          scaling=opts.scaling, anchors=_anchors(src, tgt, opts))
     return _deformed_start(src, tgt, "extrinsic", R, t, s, opts)
 
 
 def _deformed_start(src: _Shape, tgt: _Shape, route: str, R, t, s, opts: MatchOptions) -> dict:
     """Candidate start from a rigid pose: affine ICP, smooth non-rigid ICP, then closest points."""
     moved = s * src.sp @ R.T + t
-    anchors = _anchors(src, tgt.points[tgt.lm_vertices], opts)
+    anchors = _anchors(src, tgt, opts)
     affine = ex.affine_icp(moved, tgt.sp, anchors=anchors) if opts.affine else (np.eye(3), np.zeros(3))
     moved = moved @ affine[0].T + affine[1]
     A = np.zeros((0, 3))
     if opts.deform_k > 0:
-        sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
-        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes, anchors=anchors,
+        A = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=_deform_sizes(opts),
+                                     anchors=anchors,
                                      tgt_normals=tgt.surface.vertex_normals[tgt.samples])
     coords = moved + src.sphi[:, :len(A)] @ A
     t2s = nearest_rows(tgt.sp, coords)
@@ -98,10 +98,15 @@ def _deformed_start(src: _Shape, tgt: _Shape, route: str, R, t, s, opts: MatchOp
             "pose_residual": _pose_residual(src, tgt, R, t, s)}
 
 
+def _deform_sizes(opts: MatchOptions) -> list:
+    """Coarse-to-fine eigenfunction counts of the smooth non-rigid ICP, ending at `opts.deform_k`."""
+    return [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
+
+
 def _pose_residual(src: _Shape, tgt: _Shape, R, t, s) -> float:
     """Robust misfit of a rigid pose: mean point-to-plane distance of all source vertices to
     the target, each capped at the 90th percentile (so local growth does not dominate)."""
-    d = ex.plane_distances(s * src.points @ R.T + t, tgt.tree, tgt.points, tgt.surface.vertex_normals)
+    d = tgt.plane_distances(s * src.points @ R.T + t)
     return float(np.mean(np.minimum(d, np.percentile(d, 90))))
 
 
@@ -120,7 +125,7 @@ def _intrinsic_start(src: _Shape, tgt: _Shape, opts: MatchOptions) -> dict:
     t2s[tgt.lm_rows] = src.lm_rows
     R, _, _ = ex.kabsch(src.sp[t2s], tgt.sp)
     R, t, s, _ = ex.icp(src.sp, tgt.sp, R, iterations=opts.icp_iterations, scaling=opts.scaling,
-                        anchors=_anchors(src, tgt.points[tgt.lm_vertices], opts))
+                        anchors=_anchors(src, tgt, opts))
     return _deformed_start(src, tgt, "intrinsic", R, t, s, opts)
 
 
@@ -168,8 +173,8 @@ def _extend(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions):
 
 def _probe(src: _Shape, tgt: _Shape, cand: dict) -> dict:
     R, t, s = cand["pose"]
-    return rotation_ambiguity(s * src.sp @ R.T + t, src.sphi, src.values, tgt.sp, tgt.tree,
-                              tgt.points, tgt.surface.vertex_normals, tgt.weights)
+    return rotation_ambiguity(s * src.sp @ R.T + t, tgt.sp, tgt.tree, tgt.points,
+                              tgt.surface.vertex_normals, tgt.weights)
 
 
 def _rival(candidates: list, energies: list, best: int) -> dict | None:
@@ -195,10 +200,10 @@ def _floor(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions) -> float:
     R, t, s = cand["pose"]
     Aff, b = cand["affine"]
     moved = (s * src.sp @ R.T + t) @ Aff.T + b
-    sizes = [k for k in (3, 6, 10, 16, 24, 32, 48) if k < opts.deform_k] + [opts.deform_k]
-    D = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=sizes) if opts.deform_k else None
-    y = moved if D is None else moved + src.sphi[:, :len(D)] @ D
-    return float(np.mean(ex.plane_distances(y, tgt.tree, tgt.points, tgt.surface.vertex_normals)))
+    if opts.deform_k > 0:
+        D = ex.spectral_nonrigid_icp(moved, src.sphi, src.values, tgt.sp, sizes=_deform_sizes(opts))
+        moved = moved + src.sphi[:, :len(D)] @ D
+    return float(np.mean(tgt.plane_distances(moved)))
 
 
 def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse, ks_fine,
@@ -236,6 +241,7 @@ def _settle(src: _Shape, tgt: _Shape, cand: dict, opts: MatchOptions, ks_coarse,
     out["turns"] = turns
     out["rival"] = rival
     flip = out["rival"] is not None and out["rival"]["energy_ratio"] < RIVAL_WITHIN
+    out["flip"] = bool(flip)  # a flipped finalist ties with the winner
     out["ambiguous"] = bool(probe["ratio"] < AMBIGUOUS_BELOW or flip)
     if flip:
         warnings.warn(

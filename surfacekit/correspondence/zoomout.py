@@ -97,24 +97,9 @@ def pointmaps_from_fmap(C: np.ndarray, phi_t: np.ndarray, phi_s: np.ndarray,
     return t2s, s2t
 
 
-def smooth_deformation(phi_s: np.ndarray, target_points: np.ndarray, s2t: np.ndarray,
-                       k: int) -> np.ndarray:
-    """Source positions deformed smoothly onto the target, (p, 3).
-
-    The target coordinates carried to the source by `s2t` are projected on the
-    first k source eigenfunctions (least squares on the samples): a low-pass,
-    non-rigid deformation that follows the map's large-scale motion but not its
-    local errors (the spectral shape approximation of Lévy, SMI 2006).
-    phi_s (p, K) sampled source eigenvectors, target_points (q, 3).
-    """
-    basis = phi_s[:, :k]
-    coef = np.linalg.lstsq(basis, target_points[s2t], rcond=None)[0]
-    return basis @ coef
-
-
 def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, bijective: bool = True,
             coords_t: np.ndarray | None = None, coords_s: np.ndarray | None = None,
-            coord_weight: float = 0.0, deform_k: int = 0, s2t: np.ndarray | None = None,
+            coord_weight: float = 0.0, s2t: np.ndarray | None = None,
             fixed: tuple[np.ndarray, np.ndarray] | None = None):
     """ZoomOut spectral upsampling (Melzi, Ren, Rodolà, Sharma, Wonka & Ovsjanikov, ACM TOG / SIGGRAPH Asia 2019).
 
@@ -131,24 +116,18 @@ def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, biject
     bijective : estimate each C from both map directions (see :func:`fmap_from_pointmap`)
     coords_t, coords_s : (q, 3), (p, 3) aligned, normalised coordinates appended to
         the embeddings with weight `coord_weight`
-    deform_k : if > 0, after each step the source coordinates are replaced by the
-        smooth deformation of the source onto the target (:func:`smooth_deformation`
-        with ``min(k, deform_k)`` eigenfunctions), so coordinates keep guiding the
-        map through non-rigid motion
     s2t : (p,) optional initial source-to-target map
     fixed : optional ``(target_rows (l,), source_rows (l,))`` known pairs (landmarks),
         imposed on both point maps at every step
 
     Returns
     -------
-    C : (k, k) final functional map; t2s (q,); s2t (p,); coords_s (p, 3) as last used
+    C : (k, k) final functional map; t2s (q,); s2t (p,)
     """
     ks = list(ks)
     use_coords = coords_t is not None and coord_weight > 0
     for k in ks:
         C = fmap_from_pointmap(phi_t[:, :k], phi_s[:, :k], t2s, s2t if bijective else None)
-        if use_coords and deform_k > 0 and s2t is not None:
-            coords_s = smooth_deformation(phi_s, coords_t, s2t, min(k, deform_k))
         if use_coords:
             t2s, s2t = pointmaps_from_fmap(C, phi_t[:, :k], phi_s[:, :k], coord_weight * coords_t,
                                            coord_weight * coords_s)
@@ -158,4 +137,4 @@ def zoomout(phi_t: np.ndarray, phi_s: np.ndarray, t2s: np.ndarray, *, ks, biject
             t2s[fixed[0]] = fixed[1]
             s2t[fixed[1]] = fixed[0]
     C = fmap_from_pointmap(phi_t[:, :ks[-1]], phi_s[:, :ks[-1]], t2s, s2t if bijective else None)
-    return C, t2s, s2t, coords_s
+    return C, t2s, s2t
