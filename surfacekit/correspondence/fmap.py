@@ -30,6 +30,10 @@ class SpectralShape:
         return cls(s, np.asarray(basis.vectors) * np.sqrt(area), np.asarray(basis.values) * area,
                    np.asarray(basis.mass) / area)
 
+    def unit_columns(self, d: np.ndarray) -> np.ndarray:
+        """Columns of `d` (n, c) rescaled to unit M-norm on the unit-area surface (all-zero columns stay 0)."""
+        return d / np.maximum(np.sqrt(self.mass @ d**2), 1e-300)[None, :]
+
     def project(self, f: np.ndarray, k: int) -> np.ndarray:
         """Coefficients Φ_kᵀ M f, (k,) or (k, d)."""
         return self.phi[:, :k].T @ (self.mass[:, None] * f if f.ndim > 1 else self.mass * f)
@@ -44,8 +48,7 @@ def spectral_descriptors(shape: SpectralShape, basis: Eigenbasis, n_wks: int = 1
     """
     wks = wave_kernel_signature(shape.surface, basis=basis, n_energies=n_wks)
     hks = heat_kernel_signature(shape.surface, basis=basis, n_times=n_hks, normalize_area=True)
-    d = np.hstack([wks, hks])
-    return d / np.sqrt(shape.mass @ d**2)[None, :]
+    return shape.unit_columns(np.hstack([wks, hks]))
 
 
 def curvature_patch_descriptors(shape: SpectralShape) -> np.ndarray:
@@ -60,8 +63,7 @@ def curvature_patch_descriptors(shape: SpectralShape) -> np.ndarray:
 
     s = shape.surface
     d = patch_descriptors(s, mean_curvature(s) * np.sqrt(s.area))
-    d = np.where(np.isfinite(d), d, 0.0)
-    return d / np.maximum(np.sqrt(shape.mass @ d**2), 1e-300)[None, :]
+    return shape.unit_columns(np.where(np.isfinite(d), d, 0.0))
 
 
 def landmark_descriptors(shape: SpectralShape, vertices: np.ndarray, k: int = 60,
@@ -79,8 +81,7 @@ def landmark_descriptors(shape: SpectralShape, vertices: np.ndarray, k: int = 60
     phi, lam = shape.phi[:, :k], shape.values[:k]
     lam1 = lam[1] if k > 1 and lam[1] > 0 else 1.0
     cols = [phi @ (np.exp(-t * lam / lam1)[:, None] * phi[np.asarray(vertices)].T) for t in times]
-    d = np.hstack(cols)
-    return d / np.sqrt(shape.mass @ d**2)[None, :]
+    return shape.unit_columns(np.hstack(cols))
 
 
 def face_to_vertex(s: Surface) -> sp.csr_matrix:
