@@ -7,7 +7,7 @@ A synthetic cohort (kidney-like surfaces of ``--vertices`` vertices, different
 triangulations, sizes and local bulges; labelled synthetic) is written to a
 temporary folder.  The template is prepared once and copied into each run's
 output folder, as in a real cohort where it is prepared once, so the timed runs
-measure the per-subject work: prepare -> Shape-DNA -> match -> change -> write.
+measure the per-subject work: prepare -> Laplace spectrum -> match -> change -> write.
 Printed per engine: wall time, subjects per minute, mean time per stage and the
 peak resident memory of each worker process (``getrusage`` in the worker); then
 the speed-up of N workers over 1 in this same run (target: >= 1.4x for 2 workers
@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 import surfacekit as sk
-from surfacekit.batch import pipeline_options, prepare_template, read_manifest
+from surfacekit.cohort.run import pipeline_options, prepare_template, read_manifest
 
 
 def write_cohort(folder: Path, n_subjects: int, n_vertices: int) -> Path:
@@ -116,7 +116,7 @@ def main() -> None:
             print(f"speed-up {w} workers vs {min(results)}: {base_wall / wall:.2f}x "
                   f"(target >= 1.4x for 2 workers); CSV tables byte-identical: {same}")
         if args.dask:
-            from surfacekit.batch_engines import loopback_cluster
+            from surfacekit.cohort.engines import loopback_cluster
 
             n = max(args.workers)
             with loopback_cluster(n) as address:

@@ -22,7 +22,7 @@ import scipy.sparse.linalg as spla
 from threadpoolctl import threadpool_limits
 
 import surfacekit as sk
-from surfacekit.operators import _shift
+from surfacekit.mesh.operators import _shift
 
 
 def run(n: int, k: int, solver: str, repeats: int) -> dict:

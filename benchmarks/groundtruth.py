@@ -1,6 +1,6 @@
 """Ground-truth surface pairs for correspondence benchmarks and tests (synthetic, invented shapes).
 
-Each pair is one organ-like shape (:func:`surfacekit.synthetic.organ_surface`)
+Each pair is one organ-like shape (:func:`surfacekit.mesh.synthetic.organ_surface`)
 meshed twice from independent sphere triangulations of different resolution; the
 target is then deformed by a known deformation and moved by a random rigid
 motion.  Both meshes carry their sphere parameters, so the true match of any

@@ -10,34 +10,32 @@ from __future__ import annotations
 import importlib
 import logging
 
-from .surface import Surface, SurfaceError
+from .mesh.surface import Surface, SurfaceError
 
 __version__ = "0.1.0"
 
 logging.getLogger("surfacekit").addHandler(logging.NullHandler())
 
-# public name -> module that defines it (relative to this package)
+# public name -> module that defines it (relative to this package), in pipeline order
 _LAZY = {
-    # io
+    # mesh: the surface, its operators, geodesics and descriptors
+    "laplacian": "mesh.operators", "eigenbasis": "mesh.operators", "Eigenbasis": "mesh.operators",
+    "gradient": "mesh.operators", "divergence": "mesh.operators", "mass_matrix": "mesh.operators",
+    "cotangent_laplacian": "mesh.operators", "point_cloud_laplacian": "mesh.operators",
+    "EigenSolverWarning": "mesh.operators",
+    "heat_kernel_signature": "mesh.descriptors", "scale_invariant_hks": "mesh.descriptors",
+    "wave_kernel_signature": "mesh.descriptors", "laplace_spectrum": "mesh.descriptors",
+    "spectrum_distance": "mesh.descriptors", "mean_curvature": "mesh.descriptors",
+    "gaussian_curvature": "mesh.descriptors",
+    "geodesic_distance": "mesh.geodesics", "farthest_point_sampling": "mesh.geodesics",
+    "geodesic_distance_matrix": "mesh.geodesics", "geodesic_polar_coordinates": "mesh.geodesics",
+    "patch_descriptors": "mesh.geodesics", "GeodesicSolver": "mesh.geodesics",
+    # io: file formats
     "load": "io", "save": "io", "load_fields": "io", "save_fields": "io",
-    "from_segmentation": "segmentation",
-    # preparation
-    "prepare": "prepare", "quality_report": "prepare", "QualityReport": "prepare",
-    "PrepareReport": "prepare",
-    # operators
-    "laplacian": "operators", "eigenbasis": "operators", "Eigenbasis": "operators",
-    "gradient": "operators", "divergence": "operators", "mass_matrix": "operators",
-    "cotangent_laplacian": "operators", "point_cloud_laplacian": "operators",
-    "EigenSolverWarning": "operators",
-    # descriptors
-    "heat_kernel_signature": "descriptors", "scale_invariant_hks": "descriptors",
-    "wave_kernel_signature": "descriptors", "shape_dna": "descriptors",
-    "shape_dna_distance": "descriptors", "mean_curvature": "descriptors",
-    "gaussian_curvature": "descriptors",
-    # geodesics
-    "geodesic_distance": "geodesics", "farthest_point_sampling": "geodesics",
-    "geodesic_distance_matrix": "geodesics", "geodesic_polar_coordinates": "geodesics",
-    "patch_descriptors": "geodesics", "GeodesicSolver": "geodesics",
+    # preparation: segmentation volumes, repair, remeshing, mesh quality
+    "from_segmentation": "preparation", "prepare": "preparation",
+    "quality_report": "preparation", "QualityReport": "preparation",
+    "PrepareReport": "preparation",
     # correspondence
     "match": "correspondence", "Correspondence": "correspondence",
     "MatchOptions": "correspondence", "map_quality": "correspondence",
@@ -50,14 +48,21 @@ _LAZY = {
     "ShapeModel": "analysis", "shape_model": "analysis",
     "vertexwise_group_test": "analysis", "GroupTestResult": "analysis",
     "spectral_distances": "analysis",
-    # batch
-    "run_cohort": "batch",
-    # report
-    "write_report": "report",
+    # cohort runs
+    "run_cohort": "cohort",
+    # application: report
+    "write_report": "app.report",
 }
 
-_SUBMODULES = {"synthetic", "io", "operators", "descriptors", "geodesics", "prepare",
-               "segmentation", "correspondence", "analysis", "batch", "report", "cli"}
+# stage folders, and the module names earlier releases exposed as ``sk.<name>``
+_SUBMODULES = {
+    "mesh": "mesh", "io": "io", "preparation": "preparation", "correspondence": "correspondence",
+    "analysis": "analysis", "cohort": "cohort", "app": "app",
+    "synthetic": "mesh.synthetic", "operators": "mesh.operators",
+    "descriptors": "mesh.descriptors", "geodesics": "mesh.geodesics",
+    "segmentation": "preparation.segmentation", "batch": "cohort", "report": "app.report",
+    "cli": "app.cli",
+}
 
 __all__ = [
     "AmbiguousMatchWarning",
@@ -87,6 +92,7 @@ __all__ = [
     "geodesic_polar_coordinates",
     "gradient",
     "heat_kernel_signature",
+    "laplace_spectrum",
     "laplacian",
     "load",
     "load_fields",
@@ -106,11 +112,10 @@ __all__ = [
     "save_fields",
     "save_landmarks",
     "scale_invariant_hks",
-    "shape_dna",
-    "shape_dna_distance",
     "shape_model",
     "similarity_transform",
     "spectral_distances",
+    "spectrum_distance",
     "transfer_labels",
     "vertexwise_group_test",
     "wave_kernel_signature",
@@ -120,18 +125,13 @@ __all__ = [
 
 def __getattr__(name: str):
     if name in _LAZY:
-        module = importlib.import_module(f".{_LAZY[name]}", __name__)
-        value = getattr(module, name)
+        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
         globals()[name] = value
-        # importing submodule `prepare` binds the module to sk.prepare; the function must win
-        short = _LAZY[name]
-        if _LAZY.get(short) == short and hasattr(module, short):
-            globals()[short] = getattr(module, short)
         return value
     if name in _SUBMODULES:
-        return importlib.import_module(f".{name}", __name__)
+        return importlib.import_module(f".{_SUBMODULES[name]}", __name__)
     raise AttributeError(f"module 'surfacekit' has no attribute {name!r}")
 
 
 def __dir__():
-    return sorted(set(globals()) | set(_LAZY) | _SUBMODULES)
+    return sorted(set(globals()) | set(_LAZY) | set(_SUBMODULES))

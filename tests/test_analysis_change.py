@@ -1,6 +1,6 @@
 """Change maps between a baseline and a follow-up (surfacekit.analysis.change).
 
-Synthetic, invented shapes (surfacekit.synthetic); the ground-truth correspondence
+Synthetic, invented shapes (surfacekit.mesh.synthetic); the ground-truth correspondence
 is the nearest sphere parameter (both meshes triangulate the same parametric shape).
 """
 import csv
@@ -161,7 +161,7 @@ def test_closest_point_projection_matches_trimesh():
     # Reference: trimesh.proximity.closest_point (exact point-triangle distance, trimesh).
     import trimesh
 
-    from surfacekit.analysis import _geometry as geo
+    from surfacekit.analysis import geometry as geo
 
     s, _ = sk.synthetic.organ_surface("kidney", 400, seed=2)
     rng = np.random.default_rng(0)

@@ -126,7 +126,7 @@ def test_bad_shapes():
 
 
 def test_spectral_distances_between_subjects():
-    # Reuter, Wolter & Peinecke (2006): Shape-DNA is invariant to rigid motion and
+    # Reuter, Wolter & Peinecke (2006): Laplace spectrum is invariant to rigid motion and
     # uniform scale, and separates different shapes; remeshing leaves a small residue.
     kid_a, _ = sk.synthetic.organ_surface("kidney", 600, seed=0)
     kid_b, _ = sk.synthetic.organ_surface("kidney", 800, seed=4)
@@ -136,4 +136,4 @@ def test_spectral_distances_between_subjects():
     np.testing.assert_allclose(d, d.T)
     assert np.all(np.diag(d) == 0)
     assert d[0, 1] < 0.2 * min(d[0, 2], d[1, 2])
-    assert d[0, 2] == pytest.approx(sk.shape_dna_distance(kid_a, hip, 15), rel=1e-9)
+    assert d[0, 2] == pytest.approx(sk.spectrum_distance(kid_a, hip, 15), rel=1e-9)

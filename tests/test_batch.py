@@ -23,9 +23,9 @@ import numpy as np
 import pytest
 
 import surfacekit as sk
-from surfacekit.batch_engines import loopback_cluster
-from surfacekit.batch_manifest import cache_key, format_value, read_manifest
-from surfacekit.batch_tables import covariate_matrix
+from surfacekit.cohort.engines import loopback_cluster
+from surfacekit.cohort.manifest import cache_key, format_value, read_manifest
+from surfacekit.cohort.tables import covariate_matrix
 
 N_VERTICES = 1500
 TABLES = ("cohort_summary.csv", "group_test.csv")
@@ -150,7 +150,7 @@ def test_cache_key_and_formatting():
 
 def test_covariates_coded_for_the_group_test():
     """Numbers kept, two-level text coded 0/1 (sorted), constant or incomplete columns dropped."""
-    from surfacekit.batch_manifest import ManifestEntry
+    from surfacekit.cohort.manifest import ManifestEntry
 
     entries = [ManifestEntry("a", Path("a"), covariates={"age": "40", "sex": "M", "site": "x"}),
                ManifestEntry("b", Path("b"), covariates={"age": "50", "sex": "F", "site": "x"}),
@@ -190,7 +190,7 @@ def test_cohort_rows_failures_and_reference_values(cohort):
     v_template = template.volume / 1000
     assert rows["scaled"]["values"]["volume_ml"] == pytest.approx(SCALE ** 3 * v_template, rel=0.01)
     assert rows["copy"]["values"]["volume_ml"] == pytest.approx(v_template, rel=0.005)
-    # Shape-DNA is invariant to rigid motion and uniform scaling (Reuter, Wolter &
+    # Laplace spectrum is invariant to rigid motion and uniform scaling (Reuter, Wolter &
     # Peinecke 2006), so both copies lie at ~0 spectral distance from the template,
     # far below a differently deformed kidney.
     d = {n: rows[n]["values"]["spectral_distance"] for n in ("copy", "scaled", "k2")}

@@ -12,8 +12,8 @@ import pytest
 from browser_util import painted, render, why_no_browser
 
 import surfacekit as sk
-from surfacekit.report import ReportLayer, ReportPanel, write_report
-from surfacekit.report_views import correspondence_panel
+from surfacekit.app.report import ReportLayer, ReportPanel, write_report
+from surfacekit.app.views import correspondence_panel
 
 pytestmark = [pytest.mark.browser,
               pytest.mark.skipif(why_no_browser() is not None, reason=str(why_no_browser()))]

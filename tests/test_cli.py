@@ -18,7 +18,8 @@ import pytest
 from test_malformed import CASES, materialise
 
 import surfacekit as sk
-from surfacekit import cli, cli_commands, demo_data
+from surfacekit.app import cli, demo_data
+from surfacekit.app import commands as cli_commands
 
 
 def run(argv, capsys) -> tuple[int, str, str]:
@@ -106,7 +107,7 @@ def test_malformed_mesh_through_the_installed_command(tmp_path, meshes):
     bad = tmp_path / "broken.ply"
     bad.write_bytes(b"ply\nformat ascii 1.0\nelement vertex 3\nproperty float x\nend_header\n1 2\n")
     exe = Path(sys.executable).with_name("surfacekit")
-    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "surfacekit.cli"]
+    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "surfacekit.app.cli"]
     proc = subprocess.run(cmd + ["match", str(meshes / "base.ply"), str(bad), "-o",
                                  str(tmp_path / "out.npz")], capture_output=True, text=True,
                           timeout=120, check=False)

@@ -2,7 +2,7 @@
 
 Ground truth comes from outside the solver: synthetic shapes are images of the
 unit sphere, so two meshings of one shape correspond through their sphere
-parameters (surfacekit.synthetic), and a rotated, vertex-permuted copy has a
+parameters (surfacekit.mesh.synthetic), and a rotated, vertex-permuted copy has a
 known permutation.
 """
 import sys

@@ -15,7 +15,7 @@ from scipy.spatial import cKDTree
 from scipy.special import eval_legendre
 
 import surfacekit as sk
-from surfacekit import cli
+from surfacekit.app import cli
 from surfacekit.correspondence.fmap import SpectralShape, landmark_descriptors
 from surfacekit.correspondence.sampling import farthest_points
 

@@ -6,7 +6,7 @@ import pytest
 
 import surfacekit as sk
 from surfacekit.correspondence import save_landmarks
-from surfacekit.correspondence.quality import distortion, error_curve
+from surfacekit.correspondence.evaluation import distortion, error_curve
 
 
 @pytest.fixture(scope="module")

@@ -13,12 +13,12 @@ import numpy as np
 import pytest
 
 import surfacekit as sk
-from surfacekit import demo_data
+from surfacekit.app import demo_data
 
 
 def _command() -> list[str]:
     exe = Path(sys.executable).with_name("surfacekit")
-    return [str(exe)] if exe.exists() else [sys.executable, "-m", "surfacekit.cli"]
+    return [str(exe)] if exe.exists() else [sys.executable, "-m", "surfacekit.app.cli"]
 
 
 def _files(folder: Path) -> dict[str, bytes]:

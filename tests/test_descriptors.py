@@ -1,9 +1,9 @@
-"""Tests for surfacekit.descriptors (HKS, SI-HKS, WKS, Shape-DNA) and curvature."""
+"""Tests for surfacekit.mesh.descriptors (HKS, SI-HKS, WKS, Laplace spectrum) and curvature."""
 import numpy as np
 import pytest
 
 import surfacekit as sk
-from surfacekit.synthetic import random_rotation
+from surfacekit.mesh.synthetic import random_rotation
 
 
 def _sphere_heat_trace(t, l_max=400):
@@ -78,7 +78,7 @@ def test_signatures_and_curvature_unchanged_by_rigid_motion(organ):
 
 def test_scale_invariance(organ):
     """Definition of the normalisations: SI-HKS (Bronstein & Kokkinos 2010), unit-area HKS/WKS
-    and Shape-DNA (Reuter et al. 2006) do not change under uniform scaling."""
+    and Laplace spectrum (Reuter et al. 2006) do not change under uniform scaling."""
     basis = sk.eigenbasis(organ, 60)
     t0 = sk.descriptors.default_heat_times(basis.values, 2)[0] / 2**12  # one fixed grid for both
     si = sk.scale_invariant_hks(organ, basis=basis, t0=t0)
@@ -90,7 +90,7 @@ def test_scale_invariance(organ):
         for fn in (sk.heat_kernel_signature, sk.wave_kernel_signature):
             ref = fn(organ, basis=basis, normalize_area=True)
             assert np.allclose(fn(big, k=60, normalize_area=True), ref, rtol=1e-6, atol=1e-9 * ref.max())
-        assert sk.shape_dna_distance(organ, big, k=40) < 1e-6
+        assert sk.spectrum_distance(organ, big, k=40) < 1e-6
     # the raw HKS does scale, so the normalisation is doing the work (eigenvalues scale as 1/s²)
     raw = sk.heat_kernel_signature(organ, times=[100.0], basis=basis)
     raw2 = sk.heat_kernel_signature(sk.Surface(organ.vertices * 2, organ.faces), times=[400.0], k=60)
@@ -108,18 +108,18 @@ def test_wks_paper_energy_sampling(organ):
     assert np.allclose(basis.mass @ w, 1.0, rtol=1e-9)
 
 
-def test_shape_dna_weyl_law_and_isometry():
+def test_laplace_spectrum_weyl_law_and_isometry():
     """Weyl's law N(λ) ≈ Aλ/4π (Reuter et al. 2006 use it): λ_i A/4π ≈ i; sphere values exact."""
     s = sk.synthetic.icosphere(4)
-    dna = sk.shape_dna(s, 15)
+    spectrum = sk.laplace_spectrum(s, 15)
     # unit sphere: eigenvalues l(l+1) with multiplicity 2l+1 (DLMF §14.30), times A/4π ≈ 1
     exact = np.repeat([2.0, 6.0, 12.0], [3, 5, 7])
-    assert np.allclose(dna, exact, rtol=0.01)
+    assert np.allclose(spectrum, exact, rtol=0.01)
     # an isometric (rigidly moved) copy has distance ~0; a different shape does not
     moved = _moved(s)
-    assert sk.shape_dna_distance(s, moved, k=15) < 1e-6
+    assert sk.spectrum_distance(s, moved, k=15) < 1e-6
     e = sk.synthetic.ellipsoid((1.5, 1.0, 0.7), n=1000)
-    assert sk.shape_dna_distance(s, e, k=15) > 0.05
+    assert sk.spectrum_distance(s, e, k=15) > 0.05
 
 
 def test_sphere_curvature_10k():
@@ -158,4 +158,4 @@ def test_curvature_boundary_is_nan_and_bad_arguments():
     with pytest.raises(ValueError):
         sk.heat_kernel_signature(organ_like, times=[-1.0], k=20)
     with pytest.raises(ValueError):
-        sk.shape_dna(organ_like, 0)
+        sk.laplace_spectrum(organ_like, 0)

@@ -1,4 +1,4 @@
-"""Tests for surfacekit.geodesics: heat-method distances, sampling, polar patches."""
+"""Tests for surfacekit.mesh.geodesics: heat-method distances, sampling, polar patches."""
 import numpy as np
 import pytest
 
@@ -143,7 +143,7 @@ def test_polar_coordinates_on_flat_disk_are_euclidean_polar():
             inside = np.flatnonzero(np.hypot(*s.vertices[:, :2].T) <= radius * 0.98)
             assert np.isin(inside, idx).all()
     # the local (vectorised) polar coordinates used by patch descriptors are exact on a plane
-    from surfacekit.patches import local_polar_coordinates
+    from surfacekit.mesh.patches import local_polar_coordinates
 
     _, nbr, r, theta = local_polar_coordinates(s, radius, [0])
     rel = s.vertices[nbr, :2]
@@ -180,7 +180,7 @@ def test_local_polar_coordinates_agree_with_vector_heat_log_map(ellipsoid_mesh):
     Measured on a (3,2,1) ellipsoid with the default radius (0.56, about 0.6 of the smallest
     curvature radius there): r within 1.2% of the radius, theta within 0.061 rad (worst
     centre, where K = 1.23); at K <= 0.24 within 0.018 rad."""
-    from surfacekit.patches import default_patch_radius, local_polar_coordinates
+    from surfacekit.mesh.patches import default_patch_radius, local_polar_coordinates
 
     s = ellipsoid_mesh
     radius = default_patch_radius(s)

@@ -437,7 +437,7 @@ def test_atomic_write_failure_keeps_existing_file(tmp_path, sphere, monkeypatch)
         fh.write(b"ply\nformat ascii 1.0\nelement vertex 99\n")
         raise OSError("disk full (simulated)")
 
-    monkeypatch.setattr(sk.io, "write_ply", broken)
+    monkeypatch.setattr(sk.io.files, "write_ply", broken)
     with pytest.raises(OSError, match="simulated"):
         sk.save(sphere, path)
     with pytest.raises(OSError, match="simulated"):

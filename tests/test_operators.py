@@ -16,7 +16,7 @@ def test_sphere_spectrum_matches_spherical_harmonics(sphere10k):
 
 
 def test_weyls_law(sphere10k):
-    # Weyl's law (used for Shape-DNA by Reuter, Wolter & Peinecke 2006): N(λ) ≈ area·λ/(4π).
+    # Weyl's law (used for Laplace spectrum by Reuter, Wolter & Peinecke 2006): N(λ) ≈ area·λ/(4π).
     # On the unit sphere N(l(l+1)) = (l+1)² so the ratio tends to 1 as l grows.
     b = sk.eigenbasis(sphere10k, 100)
     lam = b.values[-1]

@@ -11,9 +11,10 @@ import numpy as np
 import pytest
 
 import surfacekit as sk
-from surfacekit import report, report_figures
-from surfacekit.report import ReportLayer, ReportPanel, write_report
-from surfacekit.report_views import colour_fields, map_distortion
+from surfacekit.app import figures as report_figures
+from surfacekit.app import report
+from surfacekit.app.report import ReportLayer, ReportPanel, write_report
+from surfacekit.app.views import colour_fields, map_distortion
 
 EVIL = "<script>alert(1)</script>.ply"
 

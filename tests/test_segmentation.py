@@ -1,11 +1,11 @@
-"""Label volume -> surface in world mm (surfacekit.segmentation), and the full path to a
+"""Label volume -> surface in world mm (surfacekit.preparation.segmentation), and the full path to a
 prepared surface.  Volumes are small (<= 110 x 90 x 40) and invented (synthetic)."""
 import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
 import surfacekit as sk
-from surfacekit.quality import enclosed_centroid
+from surfacekit.preparation.mesh_quality import enclosed_centroid
 
 SPACING = np.array([0.7, 0.9, 2.5])  # mm; thick slices as in clinical CT (common practice)
 AXES = np.array([30.0, 25.0, 38.0])  # ellipsoid semi-axes, mm

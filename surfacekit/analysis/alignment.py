@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..surface import Surface, SurfaceError
+from ..mesh.surface import Surface, SurfaceError
 
 #: Tukey biweight tuning constant giving 95% efficiency under Gaussian residuals
 #: (Beaton & Tukey, Technometrics 1974); residual scale from the MAD x 1.4826.

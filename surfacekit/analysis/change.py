@@ -10,8 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..surface import Surface, SurfaceError
-from . import _geometry as geo
+from ..mesh.surface import Surface, SurfaceError
+from . import geometry as geo
 from .alignment import Transform, rigid_transform
 from .regions import RESEARCH_NOTE, regional_rows, write_csv
 
@@ -131,7 +131,7 @@ class ChangeReport:
 
     def save(self, path) -> Path:
         """Save to NPZ (arrays plus JSON metadata; readable without pickle)."""
-        from ..io import save_fields
+        from ..io.files import save_fields
 
         meta = {"baseline_volume_mm3": self.baseline_volume_mm3,
                 "followup_volume_mm3": self.followup_volume_mm3,
@@ -150,7 +150,7 @@ class ChangeReport:
 
     @classmethod
     def load(cls, path) -> ChangeReport:
-        from ..io import load_fields
+        from ..io.files import load_fields
 
         try:
             a = load_fields(path)

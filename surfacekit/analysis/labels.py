@@ -4,8 +4,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from ..surface import Surface, SurfaceError
-from ._geometry import vertex_adjacency
+from ..mesh.surface import Surface, SurfaceError
+from .geometry import vertex_adjacency
 
 
 def transfer_labels(template: Surface, labels: np.ndarray, subject: Surface, corr=None, *,

@@ -59,7 +59,7 @@ def _fmt(v) -> str:
 
 def write_csv(path, rows: list[dict]) -> Path:
     """Write rows with the fixed columns, 6 decimals, '\\n' line ends; atomic."""
-    from ..io import atomic_path
+    from ..io.files import atomic_path
 
     path = Path(path)
     with atomic_path(path, suffix=".csv") as tmp, \

@@ -157,14 +157,14 @@ class ShapeModel:
 
     def save(self, path):
         """Save to NPZ (no pickle); reload with :meth:`load`."""
-        from ..io import save_fields
+        from ..io.files import save_fields
 
         return save_fields(path, mean=self.mean, modes=self.modes, variances=self.variances,
                            training=self.training)
 
     @classmethod
     def load(cls, path) -> ShapeModel:
-        from ..io import load_fields
+        from ..io.files import load_fields
 
         try:
             a = load_fields(path)
@@ -275,31 +275,31 @@ def _pca(centred: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def spectral_distances(surfaces, k: int = 50, *, weighted: bool = True) -> np.ndarray:
-    """(s, s) pairwise Shape-DNA distances between subjects (no correspondence needed).
+    """(s, s) pairwise Laplace spectrum distances between subjects (no correspondence needed).
 
     Each surface's first k area-normalised Laplace–Beltrami eigenvalues
-    (Reuter, Wolter & Peinecke, Computer-Aided Design 2006; ``sk.shape_dna``) are
-    computed once, then compared by ``sk.shape_dna_distance`` (dimensionless;
+    (Reuter, Wolter & Peinecke, Computer-Aided Design 2006; ``sk.laplace_spectrum``) are
+    computed once, then compared by ``sk.spectrum_distance`` (dimensionless;
     invariant to rigid motion, isometric bending and uniform scale).
 
     Parameters
     ----------
-    surfaces : sequence of Surface, or an (s, k) array of precomputed Shape-DNA rows
+    surfaces : sequence of Surface, or an (s, k) array of precomputed Laplace spectrum rows
     k : number of non-zero eigenvalues
-    weighted : divide the i-th difference by i (see ``sk.shape_dna_distance``)
+    weighted : divide the i-th difference by i (see ``sk.spectrum_distance``)
     """
-    from ..descriptors import shape_dna, shape_dna_distance
+    from ..mesh.descriptors import laplace_spectrum, spectrum_distance
 
     if isinstance(surfaces, np.ndarray) and surfaces.ndim == 2:
-        dna = np.asarray(surfaces, dtype=np.float64)
+        spectrum = np.asarray(surfaces, dtype=np.float64)
     else:
         surfaces = list(surfaces)
         if len(surfaces) < 2:
             raise ValueError(f"need at least 2 surfaces, got {len(surfaces)}")
-        dna = np.stack([shape_dna(s, k) for s in surfaces])
-    s = dna.shape[0]
+        spectrum = np.stack([laplace_spectrum(s, k) for s in surfaces])
+    s = spectrum.shape[0]
     out = np.zeros((s, s))
     for i in range(s):
         for j in range(i + 1, s):
-            out[i, j] = out[j, i] = shape_dna_distance(dna[i], dna[j], k, weighted=weighted)
+            out[i, j] = out[j, i] = spectrum_distance(spectrum[i], spectrum[j], k, weighted=weighted)
     return out

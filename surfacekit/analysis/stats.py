@@ -53,7 +53,7 @@ class GroupTestResult:
 
     def save(self, path):
         """Save to NPZ (arrays plus JSON settings, no pickle); reload with :meth:`load`."""
-        from ..io import save_fields
+        from ..io.files import save_fields
 
         meta = {"n_permutations": self.n_permutations, "alternative": self.alternative,
                 "df": self.df, "info": self.info, "note": RESEARCH_NOTE}
@@ -62,7 +62,7 @@ class GroupTestResult:
 
     @classmethod
     def load(cls, path) -> GroupTestResult:
-        from ..io import load_fields
+        from ..io.files import load_fields
 
         try:
             a = load_fields(path)

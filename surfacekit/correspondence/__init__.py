@@ -16,7 +16,7 @@ __all__ = ["AmbiguousMatchWarning", "Correspondence", "MatchOptions", "geodesic_
 def __getattr__(name: str):
     # quality measures pull in the geodesic solver; import them on first use
     if name in ("map_quality", "geodesic_error"):
-        from . import quality
+        from . import evaluation
 
-        return getattr(quality, name)
+        return getattr(evaluation, name)
     raise AttributeError(f"module 'surfacekit.correspondence' has no attribute {name!r}")

@@ -6,7 +6,7 @@ from itertools import permutations, product
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..surface import Surface
+from ..mesh.surface import Surface
 
 
 def normalized_coordinates(s: Surface) -> tuple[np.ndarray, np.ndarray, float]:

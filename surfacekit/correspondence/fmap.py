@@ -6,9 +6,9 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from ..descriptors import heat_kernel_signature, wave_kernel_signature
-from ..operators import Eigenbasis, gradient
-from ..surface import Surface
+from ..mesh.descriptors import heat_kernel_signature, wave_kernel_signature
+from ..mesh.operators import Eigenbasis, gradient
+from ..mesh.surface import Surface
 
 
 @dataclass
@@ -58,8 +58,8 @@ def curvature_patch_descriptors(shape: SpectralShape) -> np.ndarray:
     with its default radius; each column rescaled to unit M-norm on the unit-area
     surface, NaN (rings without finite values, e.g. at a boundary) set to 0.
     """
-    from ..curvature import mean_curvature
-    from ..patches import patch_descriptors
+    from ..mesh.curvature import mean_curvature
+    from ..mesh.patches import patch_descriptors
 
     s = shape.surface
     d = patch_descriptors(s, mean_curvature(s) * np.sqrt(s.area))

@@ -9,8 +9,8 @@ from pathlib import Path
 import numpy as np
 import scipy.sparse as sp
 
-from ..io import atomic_path, save_fields
-from ..surface import Surface
+from ..io.files import atomic_path, save_fields
+from ..mesh.surface import Surface
 
 _FORMAT_TAG = "surfacekit.correspondence/1"
 
@@ -246,7 +246,7 @@ def load_landmarks(path) -> np.ndarray:
     and a plain CSV of two integer columns without header.  Problems raise
     ValueError naming the file and the row.
     """
-    from ..io import load_fields
+    from ..io.files import load_fields
 
     path = Path(path)
     if not path.is_file():

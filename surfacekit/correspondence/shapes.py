@@ -6,8 +6,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..operators import eigenbasis
-from ..surface import Surface, SurfaceError
+from ..mesh.operators import eigenbasis
+from ..mesh.surface import Surface, SurfaceError
 from . import extrinsic as ex
 from .fmap import SpectralShape, spectral_descriptors
 from .options import MatchOptions

@@ -9,7 +9,7 @@ import warnings
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..surface import Surface
+from ..mesh.surface import Surface
 from . import extrinsic as ex
 from .ambiguity import (
     AMBIGUOUS_BELOW,

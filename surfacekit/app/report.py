@@ -30,8 +30,8 @@ from typing import Any
 
 import numpy as np
 
-from .io import atomic_path
-from .surface import Surface
+from ..io.files import atomic_path
+from ..mesh.surface import Surface
 
 CAUTION = ("Research use only: these results come from research data processing and are not "
            "for diagnosis or treatment decisions. Any clinical use must follow local regulations "
@@ -288,7 +288,7 @@ def versions() -> dict:
     """Versions of surfacekit and its main dependencies, for provenance."""
     from importlib import metadata
 
-    from . import __version__
+    from .. import __version__
 
     out = {"surfacekit": __version__, "python": platform.python_version()}
     for name in ("numpy", "scipy", "trimesh", "matplotlib", "plotly", "nibabel"):
@@ -301,7 +301,7 @@ def versions() -> dict:
 
 
 def _css() -> str:
-    return resources.files("surfacekit").joinpath("report_assets/report.css").read_text("utf-8")
+    return resources.files("surfacekit.app").joinpath("report_assets/report.css").read_text("utf-8")
 
 
 _JS = """

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .patches import patch_descriptors  # noqa: F401  (public name of this module)
+from .patches import patch_descriptors  # noqa: F401  public name of this module
 from .surface import Surface, SurfaceError
 
 

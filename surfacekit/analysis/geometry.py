@@ -5,7 +5,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from ..surface import Surface
+from ..mesh.surface import Surface
 
 
 def vertex_adjacency(s: Surface, *, self_loops: bool = True) -> sp.csr_matrix:
@@ -127,7 +127,7 @@ def heat_smooth(s: Surface, values: np.ndarray, sigma: float) -> np.ndarray:
     """
     if sigma <= 0:
         return np.array(values, dtype=np.float64, copy=True)
-    from ..operators import laplacian
+    from ..mesh.operators import laplacian
 
     L, M = laplacian(s)
     key = ("analysis-heat-smooth", float(sigma))

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from .surface import Surface, SurfaceError
+from ..mesh.surface import Surface, SurfaceError
 
 #: slices per slab when scanning a volume for the label's bounding box
 _SLAB = 16

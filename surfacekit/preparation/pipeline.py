@@ -10,17 +10,16 @@ from __future__ import annotations
 
 import json
 import logging
-import sys
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
 
 from . import repair
-from .quality import QualityReport, enclosed_centroid, quality_report
+from .mesh_quality import QualityReport, enclosed_centroid, quality_report
 from .remesh import improve_triangles, resample
 from .repair import umbrella_matrix
-from .surface import Surface, SurfaceError
+from ..mesh.surface import Surface, SurfaceError
 
 __all__ = [
     "PrepareReport",
@@ -99,7 +98,7 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
     """
     from scipy.sparse.linalg import cg
 
-    from .operators import cotangent_laplacian
+    from ..mesh.operators import cotangent_laplacian
 
     x = np.array(vertices, dtype=np.float64)
     f = np.asarray(faces)
@@ -347,15 +346,3 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     for w in report.after.warnings:
         log.warning("prepare: %s", w)
     return s, report
-
-
-class _CallableModule(sys.modules[__name__].__class__):
-    """``import surfacekit.prepare`` binds this module to ``surfacekit.prepare``, shadowing
-    the function of the same name; calling the module calls the function, so
-    ``sk.prepare(surface)`` works however the module was first imported."""
-
-    def __call__(self, *args, **kwargs):
-        return prepare(*args, **kwargs)
-
-
-sys.modules[__name__].__class__ = _CallableModule

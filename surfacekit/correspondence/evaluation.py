@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..surface import Surface
+from ..mesh.surface import Surface
 from .result import Correspondence
 
 
@@ -42,7 +42,7 @@ def geodesic_error(surface: Surface, predicted, truth, normalize: bool = True) -
     -------
     (m,) errors, dimensionless or mm.
     """
-    from ..geodesics import geodesic_distance
+    from ..mesh.geodesics import geodesic_distance
 
     pred = np.asarray(predicted)
     if pred.ndim != 1 or not np.issubdtype(pred.dtype, np.integer):

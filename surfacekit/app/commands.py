@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from .cli import Context, InputError
-from .cli_batch import _cohort, _cohort_args, _demo, _demo_args
+from .batch_commands import _cohort, _cohort_args, _demo, _demo_args
 from .cli_util import (
     existing,
     input_record,
@@ -75,7 +75,6 @@ def _prepare_args(p):
 
 def _prepare(ctx: Context) -> dict:
     import surfacekit as sk
-    from surfacekit.prepare import prepare as prepare_surface  # the module shadows sk.prepare
 
     a = ctx.args
     if a.target_vertices is not None and a.target_vertices < 100:
@@ -88,7 +87,7 @@ def _prepare(ctx: Context) -> dict:
         else:
             surface = load_surface(a.input)
         bar.update()
-        prepared, report = prepare_surface(surface, target_vertices=a.target_vertices,
+        prepared, report = sk.prepare(surface, target_vertices=a.target_vertices,
                                       smooth=False if a.no_smooth else None)
         bar.update()
     sk.save(prepared, target)
@@ -191,7 +190,7 @@ def _match(ctx: Context) -> dict:
                "output": str(a.output), **_map_summary(corr), "seconds": round(seconds, 2)}
     if report_path is not None:
         from .report import write_report
-        from .report_views import correspondence_panel
+        from .views import correspondence_panel
 
         names = (Path(a.source).name, Path(a.target).name)
         write_report(report_path, title="surfacekit correspondence report",
@@ -239,7 +238,7 @@ def _change(ctx: Context) -> dict:
     import surfacekit as sk
 
     from .report import write_report
-    from .report_views import change_figures, change_panel
+    from .views import change_figures, change_panel
 
     a = ctx.args
     out = ctx.outputs.claim(a.output, directory=True)

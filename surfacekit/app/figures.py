@@ -5,7 +5,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from .surface import Surface
+from ..mesh.surface import Surface
 
 
 def _plt():

@@ -10,7 +10,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order, connected_components
 
-from .quality import (
+from .mesh_quality import (
     coincident_vertex_map,
     corner_fan_labels,
     degenerate_faces,
@@ -19,7 +19,7 @@ from .quality import (
     inconsistent_edges,
     row_keys,
 )
-from .surface import Surface, SurfaceError
+from ..mesh.surface import Surface, SurfaceError
 
 
 def umbrella_matrix(f: np.ndarray, n: int) -> sp.csr_matrix:

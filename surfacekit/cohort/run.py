@@ -1,7 +1,7 @@
 """Cohorts at scale: the per-subject pipeline over a manifest, locally or on a Dask cluster.
 
 For each subject of a cohort manifest (see :mod:`surfacekit.batch_manifest`):
-load the mesh or label volume -> ``sk.prepare`` -> Shape-DNA -> ``sk.match`` to
+load the mesh or label volume -> ``sk.prepare`` -> Laplace spectrum -> ``sk.match`` to
 the template -> ``sk.measure_change`` (fields per template vertex); results are
 written under ``output_dir/subjects/<id>/`` and marked done under a key derived
 from the input bytes, template, options and package version, so a re-run skips
@@ -26,10 +26,10 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .batch_engines import engine_name, run_tasks
-from .batch_manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
-from .batch_subject import (
+from .. import __version__
+from .engines import engine_name, run_tasks
+from .manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
+from .subject import (
     MARKER_SUFFIX,
     STAGES,
     SubjectTask,
@@ -37,10 +37,10 @@ from .batch_subject import (
     prepare_surface,
     read_finished,
     save_npz_deterministic,
-    spectrum,
+    subject_spectrum,
     write_json,
 )
-from .batch_tables import write_fields_matrix, write_group_test, write_summary
+from .tables import write_fields_matrix, write_group_test, write_summary
 
 logger = logging.getLogger(__name__)
 
@@ -144,9 +144,9 @@ def prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Pa
             stale.unlink()
         with threadpool_limits(limits=1):  # same arithmetic as in the pinned workers
             template = prepare_surface(load_input_surface(entry.path, entry.label), options)
-            dna = spectrum(template, options)
+            spectrum = subject_spectrum(template, options)
         save_npz_deterministic(tfile, {"vertices": template.vertices, "faces": template.faces,
-                                       "shape_dna": dna})
+                                       "laplace_spectrum": spectrum})
         sk.save(template, tdir / "template.ply")
         (tdir / f"{key}{MARKER_SUFFIX}").write_text(key + "\n")
     with np.load(tfile, allow_pickle=False) as data:
@@ -170,7 +170,7 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     scheduler : address of a Dask scheduler (e.g. ``tcp://10.0.0.5:8786``); the
         workers must see `output_dir` and the inputs at the same paths
     target_vertices : vertex count every surface is resampled to by ``sk.prepare``
-    n_eigenvalues : length of the Shape-DNA spectrum
+    n_eigenvalues : length of the Laplace spectrum spectrum
     n_permutations : permutations of the vertex-wise group test
     seed : seed of matching, change measures and the group test
     progress : show a progress bar over subjects (stderr)

@@ -19,7 +19,7 @@ import warnings
 from collections.abc import Sequence
 from pathlib import Path
 
-from .surface import SurfaceError
+from ..mesh.surface import SurfaceError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 #: `cohort` when some (not all) subjects failed; their rows in the summary hold the errors
@@ -120,7 +120,8 @@ def _add_common(p: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     """The full ``surfacekit`` parser (one subcommand per stage of the job)."""
-    from . import __version__, cli_commands
+    from .. import __version__
+    from . import commands as cli_commands
 
     parser = _Parser(prog="surfacekit", formatter_class=argparse.RawDescriptionHelpFormatter,
                      description="Analyse deformable anatomical surfaces: inspect, prepare, "

@@ -7,9 +7,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .quality import edge_pairs, row_keys
+from .mesh_quality import edge_pairs, row_keys
 from .repair import compact, umbrella_matrix
-from .surface import Surface
+from ..mesh.surface import Surface
 
 
 def _edge_keys(edges: np.ndarray) -> np.ndarray:

@@ -14,7 +14,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from .surface import Surface
+from ..mesh.surface import Surface
 
 #: coordinates closer than this fraction of the bounding-box diagonal count as one point
 MERGE_TOLERANCE = 1e-7

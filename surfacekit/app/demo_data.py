@@ -25,9 +25,9 @@ from pathlib import Path
 
 import numpy as np
 
-from . import synthetic
-from .io import atomic_path
-from .surface import Surface
+from ..mesh import synthetic
+from ..io.files import atomic_path
+from ..mesh.surface import Surface
 
 REGION_NAMES = {1: "upper pole", 2: "lower pole", 3: "medial side", 4: "lateral side"}
 # Centre (on the parameter sphere) of the growing region: lateral side of the upper pole.
@@ -154,7 +154,7 @@ def write_nifti(path: Path, labels: np.ndarray, affine: np.ndarray) -> None:
 
 
 def _save(surface: Surface, path: Path, fields: dict | None = None) -> None:
-    from .io import save
+    from ..io.files import save
 
     save(surface, path, fields=fields)
 

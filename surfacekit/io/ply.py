@@ -17,7 +17,7 @@ import re
 
 import numpy as np
 
-from .meshcommon import (
+from .parsing import (
     as_integers,
     column_type,
     fan_triangulate,
@@ -25,7 +25,7 @@ from .meshcommon import (
     group_fields,
     to_numbers,
 )
-from .surface import SurfaceError
+from ..mesh.surface import SurfaceError
 
 # PLY scalar type names (both spellings of the specification) -> numpy dtype code
 PLY_TYPES = {

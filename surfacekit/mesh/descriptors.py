@@ -1,4 +1,4 @@
-"""Intrinsic descriptors: heat and wave kernel signatures, Shape-DNA, curvature.
+"""Intrinsic descriptors: heat and wave kernel signatures, Laplace spectrum, curvature.
 
 Every spectral descriptor here reuses the cached eigenbasis of the surface
 (:func:`surfacekit.eigenbasis`), so computing several of them costs one
@@ -15,7 +15,7 @@ the area ``A`` and eigenfunctions by ``√A``.  Times (HKS) are then dimensionle
 (in units of the area), and the values are comparable across subjects of
 different size: two surfaces that differ only by a uniform scaling get identical
 normalised signatures.  :func:`scale_invariant_hks` needs no normalisation (it
-removes scale by construction) and :func:`shape_dna` always uses ``λ·A/(4π)``.
+removes scale by construction) and :func:`laplace_spectrum` always uses ``λ·A/(4π)``.
 Curvatures are extrinsic-scale quantities (1/mm, 1/mm²) and are left in units.
 """
 from __future__ import annotations
@@ -32,8 +32,8 @@ __all__ = [
     "heat_kernel_signature",
     "mean_curvature",
     "scale_invariant_hks",
-    "shape_dna",
-    "shape_dna_distance",
+    "laplace_spectrum",
+    "spectrum_distance",
     "wave_kernel_signature",
 ]
 
@@ -209,9 +209,9 @@ def wave_kernel_signature(s: Surface, energies=None, basis: Eigenbasis | None = 
     return wks
 
 
-def shape_dna(s: Surface, k: int = 50, basis: Eigenbasis | None = None) -> np.ndarray:
-    """Shape-DNA: the first k non-zero eigenvalues normalised by area (Reuter, Wolter
-    & Peinecke, Computer-Aided Design 38(4), 2006).
+def laplace_spectrum(s: Surface, k: int = 50, basis: Eigenbasis | None = None) -> np.ndarray:
+    """The first k non-zero Laplace–Beltrami eigenvalues, normalised by area: the
+    "Shape-DNA" of Reuter, Wolter & Peinecke (Computer-Aided Design 38(4), 2006).
 
     Values are ``λ_i · A / (4π)``: by Weyl's law ``λ_i ≈ 4π i / A``, so the
     normalised sequence grows like ``i`` whatever the size of the shape, and it is
@@ -231,27 +231,27 @@ def shape_dna(s: Surface, k: int = 50, basis: Eigenbasis | None = None) -> np.nd
     return values[: int(k)] * float(b.mass.sum()) / (4 * np.pi)
 
 
-def shape_dna_distance(a, b, k: int = 50, *, weighted: bool = True) -> float:
-    """Distance between two shapes on their Shape-DNA (Reuter et al. 2006).
+def spectrum_distance(a, b, k: int = 50, *, weighted: bool = True) -> float:
+    """Distance between two shapes on their Laplace spectrum (Reuter et al. 2006).
 
     Euclidean distance between the normalised eigenvalue sequences of
-    :func:`shape_dna`.  With ``weighted`` the i-th difference is divided by ``i``,
+    :func:`laplace_spectrum`.  With ``weighted`` the i-th difference is divided by ``i``,
     so each eigenvalue contributes a relative difference instead of the high
     (large, noisier) eigenvalues dominating (common practice).
 
     Parameters
     ----------
-    a, b : Surface or (k,) precomputed Shape-DNA sequences
+    a, b : Surface or (k,) precomputed Laplace spectrum sequences
 
     Returns
     -------
     float, dimensionless; 0 for isometric or uniformly scaled copies.
     """
-    da = shape_dna(a, k) if isinstance(a, Surface) else np.asarray(a, dtype=float).ravel()
-    db = shape_dna(b, k) if isinstance(b, Surface) else np.asarray(b, dtype=float).ravel()
+    da = laplace_spectrum(a, k) if isinstance(a, Surface) else np.asarray(a, dtype=float).ravel()
+    db = laplace_spectrum(b, k) if isinstance(b, Surface) else np.asarray(b, dtype=float).ravel()
     m = min(da.size, db.size, int(k))
     if m < 1:
-        raise ValueError("shape_dna_distance needs non-empty sequences")
+        raise ValueError("spectrum_distance needs non-empty sequences")
     diff = da[:m] - db[:m]
     if weighted:
         diff = diff / np.arange(1, m + 1)

@@ -20,7 +20,7 @@ from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from contextlib import contextmanager
 from pathlib import Path
 
-from .batch_subject import SubjectTask, one_line, run_subject
+from .subject import SubjectTask, one_line, run_subject
 
 _BLAS_LIMIT = None
 

@@ -55,8 +55,8 @@ def _cohort_panel(result_dir: Path, raw_template, raw_labels):
 
     from scipy.spatial import cKDTree
 
-    from .report_views import group_test_panel
-    from .surface import Surface
+    from .views import group_test_panel
+    from ..mesh.surface import Surface
 
     gt = result_dir / "group_test.csv"
     tfile = result_dir / "template" / "template.npz"
@@ -95,10 +95,10 @@ def run_demo(out, *, size: str = "full", seed: int = 0, quiet: bool = False,
     """Generate the synthetic study into `out` and run every stage on it; returns a summary."""
     import surfacekit as sk
 
-    from . import report_figures as rfig
+    from . import figures as rfig
     from .cli_util import input_record, surface_facts, without_timings, write_rows_csv
-    from .prepare import prepare as prepare_surface  # module name shadows sk.prepare
-    from .report_views import change_figures, change_panel, correspondence_panel
+    from ..preparation import prepare as prepare_surface
+    from .views import change_figures, change_panel, correspondence_panel
 
     out = Path(out)
     data, res, figdir = out / "data", out / "results", out / "figures"

@@ -22,8 +22,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .batch_manifest import VOLUME_SUFFIXES
-from .io import atomic_path, save_fields
+from .manifest import VOLUME_SUFFIXES
+from ..io.files import atomic_path, save_fields
 
 STAGES = ("load", "prepare", "descriptors", "match", "change", "write")
 MARKER_SUFFIX = ".done"
@@ -75,10 +75,10 @@ def prepare_surface(surface, options: dict):
     return prepared
 
 
-def spectrum(surface, options: dict) -> np.ndarray:
+def subject_spectrum(surface, options: dict) -> np.ndarray:
     import surfacekit as sk
 
-    return np.asarray(sk.shape_dna(surface, k=options["n_eigenvalues"]), dtype=np.float64)
+    return np.asarray(sk.laplace_spectrum(surface, k=options["n_eigenvalues"]), dtype=np.float64)
 
 
 _TEMPLATE_CACHE: dict = {}
@@ -91,14 +91,14 @@ def load_template(template_file: str, template_key: str):
     worker handles; the eigenbasis cache returns the same arrays for the same
     sequence of requests, so results do not depend on which worker ran what.
     """
-    from .surface import Surface
+    from ..mesh.surface import Surface
 
     if template_key not in _TEMPLATE_CACHE:
         _TEMPLATE_CACHE.clear()
         with np.load(template_file, allow_pickle=False) as data:
             template = Surface(data["vertices"], data["faces"])
-            dna = np.array(data["shape_dna"])
-        _TEMPLATE_CACHE[template_key] = (template, dna)
+            spectrum = np.array(data["laplace_spectrum"])
+        _TEMPLATE_CACHE[template_key] = (template, spectrum)
     return _TEMPLATE_CACHE[template_key]
 
 
@@ -123,10 +123,10 @@ def _compute(task: SubjectTask, timings: dict):
     del raw
     timings["prepare"] = time.perf_counter() - tic
 
-    template, template_dna = load_template(task.template_file, task.template_key)
+    template, template_spectrum = load_template(task.template_file, task.template_key)
     tic = time.perf_counter()
-    dna = spectrum(subject, opts)
-    spectral_distance = float(sk.shape_dna_distance(template_dna, dna, k=opts["n_eigenvalues"]))
+    spectrum = subject_spectrum(subject, opts)
+    spectral_distance = float(sk.spectrum_distance(template_spectrum, spectrum, k=opts["n_eigenvalues"]))
     timings["descriptors"] = time.perf_counter() - tic
 
     tic = time.perf_counter()
@@ -147,7 +147,7 @@ def _compute(task: SubjectTask, timings: dict):
         "log_area_ratio": lar,                                       # (n_template,)
         "displacement": np.asarray(rep.displacement, np.float64),    # (n_template, 3) mm
         "target_vertex": np.asarray(corr.source_to_target, np.int64),  # subject vertex per template vertex
-        "shape_dna": dna,                                            # (k,) dimensionless
+        "laplace_spectrum": spectrum,                                            # (k,) dimensionless
     }
     if corr.confidence is not None:
         fields["match_confidence"] = np.asarray(corr.source_confidence

@@ -16,8 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .batch_manifest import Manifest, format_value
-from .io import atomic_path, npz_member
+from .manifest import Manifest, format_value
+from ..io.files import atomic_path, npz_member
 
 SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "volume_change_ml",
                   "mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
@@ -56,14 +56,14 @@ def write_fields_matrix(path, manifest: Manifest, rows: list[dict], subject_dirs
 
     Each matrix is streamed one subject row at a time, so memory stays at one
     row however large the cohort.  Also stores ``subjects``, ``groups``, ``ok`` (s,)
-    and ``shape_dna`` (s, k).  Fixed zip time stamps make the file byte-reproducible.
+    and ``laplace_spectrum`` (s, k).  Fixed zip time stamps make the file byte-reproducible.
     """
     s = len(manifest.subjects)
     ok = np.array([r["status"] == "ok" for r in rows])
     names = {"subjects": np.array([e.subject for e in manifest.subjects]),
              "groups": np.array([e.group for e in manifest.subjects]), "ok": ok}
     columns = {f: (n_template,) for f in VERTEX_FIELDS}
-    columns["shape_dna"] = (n_eigenvalues,)
+    columns["laplace_spectrum"] = (n_eigenvalues,)
     with atomic_path(Path(path), suffix=".npz") as tmp, \
             zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
         for name, arr in names.items():

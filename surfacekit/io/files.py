@@ -24,11 +24,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .meshcommon import FIELD_NAME
-from .meshformats import read_ply, write_ply
-from .simpleformats import read_obj, read_off, read_stl, write_obj, write_off, write_stl
-from .surface import Surface, SurfaceError
-from .vtk_legacy import read_vtk, write_vtk
+from .parsing import FIELD_NAME
+from .ply import read_ply, write_ply
+from .simple import read_obj, read_off, read_stl, write_obj, write_off, write_stl
+from ..mesh.surface import Surface, SurfaceError
+from .vtk import read_vtk, write_vtk
 
 MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk", ".npz")
 _NATIVE_FIELDS = (".ply", ".vtk", ".gii", ".npz")

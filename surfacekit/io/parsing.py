@@ -9,7 +9,7 @@ import re
 
 import numpy as np
 
-from .surface import SurfaceError
+from ..mesh.surface import SurfaceError
 
 FIELD_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.\-]*$")
 

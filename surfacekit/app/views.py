@@ -7,9 +7,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import report_figures as figs
+from . import figures as figs
 from .report import ReportLayer, ReportPanel
-from .surface import Surface
+from ..mesh.surface import Surface
 
 
 def colour_fields(surface: Surface) -> tuple[np.ndarray, np.ndarray]:

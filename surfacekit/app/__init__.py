@@ -1,0 +1,1 @@
+"""The application stage: command line, HTML/PNG report and the synthetic demo."""
