@@ -12,6 +12,8 @@ from .files import (
     validate_fields,
     write_npz,
 )
+from .tables import RESEARCH_NOTE, format_value, json_default, write_csv, write_json
 
-__all__ = ["atomic_path", "load", "load_fields", "load_with_fields", "npz_member", "save",
-           "save_fields", "sidecar_path", "validate_fields", "write_npz"]
+__all__ = ["RESEARCH_NOTE", "atomic_path", "format_value", "json_default", "load", "load_fields",
+           "load_with_fields", "npz_member", "save", "save_fields", "sidecar_path",
+           "validate_fields", "write_csv", "write_json", "write_npz"]
