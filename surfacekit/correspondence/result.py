@@ -10,6 +10,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from ..io.files import atomic_path, save_fields
+from ..io.tables import json_default
 from ..mesh.surface import Surface
 
 _FORMAT_TAG = "surfacekit.correspondence/1"
@@ -148,7 +149,7 @@ class Correspondence:
             "format": np.array(_FORMAT_TAG),
             "source_to_target": self.source_to_target,
             "target_to_source": self.target_to_source,
-            "info_json": np.array(json.dumps(self.info, default=_json_default)),
+            "info_json": np.array(json.dumps(self.info, default=json_default)),
         }
         for name in ("functional_map", "confidence", "source_confidence"):
             if getattr(self, name) is not None:
@@ -282,11 +283,3 @@ def load_landmarks(path) -> np.ndarray:
     if not np.issubdtype(pairs.dtype, np.integer) or pairs.min() < 0:
         raise ValueError(f"{path.name}: landmark vertices must be non-negative integers")
     return pairs.astype(np.int64)
-
-
-def _json_default(o):
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    raise TypeError(f"info value of type {type(o).__name__} is not JSON-able")
