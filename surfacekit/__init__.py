@@ -11,8 +11,7 @@ import importlib
 import logging
 
 from .mesh.surface import Surface, SurfaceError
-
-__version__ = "0.1.0"
+from .version import __version__
 
 logging.getLogger("surfacekit").addHandler(logging.NullHandler())
 

@@ -120,7 +120,7 @@ def _add_common(p: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     """The full ``surfacekit`` parser (one subcommand per stage of the job)."""
-    from .. import __version__
+    from ..version import __version__
     from . import commands as cli_commands
 
     parser = _Parser(prog="surfacekit", formatter_class=argparse.RawDescriptionHelpFormatter,

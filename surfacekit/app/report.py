@@ -288,7 +288,7 @@ def versions() -> dict:
     """Versions of surfacekit and its main dependencies, for provenance."""
     from importlib import metadata
 
-    from .. import __version__
+    from ..version import __version__
 
     out = {"surfacekit": __version__, "python": platform.python_version()}
     for name in ("numpy", "scipy", "trimesh", "matplotlib", "plotly", "nibabel"):

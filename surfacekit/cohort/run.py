@@ -26,7 +26,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .. import __version__
+from ..version import __version__
 from .engines import engine_name, run_tasks
 from .manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
 from .subject import (
