@@ -5,13 +5,12 @@ from .files import (
     load,
     load_fields,
     load_with_fields,
-    npz_member,
     save,
     save_fields,
     sidecar_path,
     validate_fields,
-    write_npz,
 )
+from .npz import npz_member, write_npz
 from .tables import RESEARCH_NOTE, format_value, json_default, write_csv, write_json
 
 __all__ = ["RESEARCH_NOTE", "atomic_path", "format_value", "json_default", "load", "load_fields",

@@ -12,22 +12,19 @@ never clobbers an existing one.
 """
 from __future__ import annotations
 
-import io
 import os
-import re
-import struct
 import tempfile
-import zipfile
-import zlib
 from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 
+from ..mesh.surface import Surface, SurfaceError
+from .gifti import gifti_bytes, read_gifti
+from .npz import read_npz_arrays, read_npz_mesh, write_npz
 from .parsing import FIELD_NAME
 from .ply import read_ply, write_ply
 from .simple import read_obj, read_off, read_stl, write_obj, write_off, write_stl
-from ..mesh.surface import Surface, SurfaceError
 from .vtk import read_vtk, write_vtk
 
 MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk", ".npz")
@@ -43,10 +40,6 @@ _MAGIC = [
     (b"\x80\x03", "a Python pickle (never loaded)"), (b"\x80\x04", "a Python pickle (never loaded)"),
     (b"\x80\x05", "a Python pickle (never loaded)"),
 ]
-# Decompressed data may exceed the file by this factor (plus a fixed allowance) before
-# a GIFTI or NPZ file is refused as a decompression bomb (common practice; deflate
-# reaches ~1000:1 on constant data, real meshes ~2-5:1).
-_MAX_EXPANSION, _EXPANSION_ALLOWANCE = 100, 256 << 20
 
 
 @contextmanager
@@ -116,92 +109,8 @@ def _sniff(data: bytes, kind: str) -> None:
         raise SurfaceError(f"file is a NIfTI volume, not {article} {kind} mesh (use from_segmentation)")
 
 
-def _check_npz(path: Path) -> None:
-    """Refuse NPZ members holding objects (pickles) or claiming more data than the file can hold."""
-    size = path.stat().st_size
-    try:
-        with zipfile.ZipFile(path) as zf:
-            infos = zf.infolist()
-            if sum(i.file_size for i in infos) > _MAX_EXPANSION * size + _EXPANSION_ALLOWANCE:
-                raise SurfaceError("NPZ archive expands to far more data than it holds (refused)")
-            for info in infos:
-                with zf.open(info) as fh:
-                    version = np.lib.format.read_magic(fh)
-                    reader = (np.lib.format.read_array_header_1_0 if version == (1, 0)
-                              else np.lib.format.read_array_header_2_0)
-                    shape, _, dtype = reader(fh)
-                if dtype.hasobject:
-                    raise SurfaceError(f"NPZ member {info.filename!r} holds Python objects "
-                                       "(pickle; refused)")
-                if int(np.prod(shape, dtype=np.float64)) * dtype.itemsize > info.file_size:
-                    raise SurfaceError(f"NPZ member {info.filename!r} claims more data than it holds")
-    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, NotImplementedError, OSError,
-            struct.error, zlib.error) as exc:
-        raise SurfaceError(f"not a readable NPZ (zip) archive: {str(exc)[:80]}") from None
-    except ValueError as exc:
-        if isinstance(exc, SurfaceError):
-            raise
-        raise SurfaceError(f"bad NPZ member: {str(exc)[:80]}") from None
-
-
-def _npz_arrays(path: Path) -> dict:
-    _check_npz(path)
-    try:
-        with np.load(path, allow_pickle=False) as data:
-            return {k: data[k] for k in data.files}
-    except (ValueError, OSError, EOFError, zipfile.BadZipFile, zlib.error) as exc:
-        raise SurfaceError(f"cannot read NPZ: {str(exc)[:80]}") from None
-
-
-def _read_npz_mesh(path: Path):
-    arrays = _npz_arrays(path)
-    if "vertices" not in arrays or "faces" not in arrays:
-        raise SurfaceError("NPZ file lacks 'vertices' and 'faces' arrays")
-    fields = {k[len("fields/"):]: v for k, v in arrays.items() if k.startswith("fields/")}
-    return arrays["vertices"], arrays["faces"], fields, "npz"
-
-
-def _read_gifti(data: bytes):
-    """GIFTI surface: NIFTI_INTENT_POINTSET + NIFTI_INTENT_TRIANGLE; other arrays become fields."""
-    import nibabel as nib
-
-    # External DTDs are never fetched by expat; internal subsets could define entities.
-    if re.search(rb"<!ENTITY|<!DOCTYPE[^>]*\[", data):
-        raise SurfaceError("GIFTI XML with entity declarations is refused")
-    if b"ExternalFileBinary" in data:
-        raise SurfaceError("GIFTI arrays stored in external files are not followed")
-    declared = 0
-    for tag in re.findall(rb"<DataArray\b[^>]*>", data):
-        dims = [int(d) for d in re.findall(rb'\bDim\d\s*=\s*"(\d{1,15})"', tag)]
-        declared += int(np.prod(dims, dtype=np.float64)) * 8
-    if declared > _MAX_EXPANSION * len(data) + _EXPANSION_ALLOWANCE:
-        raise SurfaceError("GIFTI arrays claim far more data than the file holds (refused)")
-    try:
-        # nibabel's default 35 MB expat buffer would dominate the memory of small files.
-        file_map = nib.gifti.GiftiImage.make_file_map({"image": io.BytesIO(data)})
-        img = nib.gifti.GiftiImage.from_file_map(file_map, buffer_size=1 << 20)
-        arrays = [(da.intent, nib.nifti1.intent_codes.label[da.intent], da.meta.get("Name"),
-                   np.asarray(da.data)) for da in img.darrays]
-    except MemoryError:
-        raise
-    except Exception as exc:  # noqa: BLE001  nibabel/expat raise many types on corrupt XML
-        raise SurfaceError(f"cannot parse GIFTI: {type(exc).__name__}: {str(exc)[:80]}") from None
-    points = [a for a in arrays if a[1] == "pointset"]
-    tris = [a for a in arrays if a[1] == "triangle"]
-    if not points:
-        raise SurfaceError("GIFTI file has no NIFTI_INTENT_POINTSET array (not a surface)")
-    if not tris:
-        raise SurfaceError("GIFTI file has no NIFTI_INTENT_TRIANGLE array (point set only)")
-    vertices, n = points[0][3], len(points[0][3])
-    fields = {}
-    for i, (_, label, name, arr) in enumerate(arrays):
-        if label not in ("pointset", "triangle") and arr.ndim in (1, 2) and len(arr) == n:
-            fields[name if name and FIELD_NAME.match(name) else f"array{i}"] = arr
-    return vertices, tris[0][3], fields, "gifti"
-
-
 _READERS = {".ply": read_ply, ".obj": read_obj, ".stl": read_stl, ".off": read_off,
-            ".vtk": read_vtk, ".gii": _read_gifti}
+            ".vtk": read_vtk, ".gii": read_gifti}
 _PARSE_ERRORS = (ValueError, IndexError, KeyError, OverflowError, UnicodeDecodeError)
 
 
@@ -254,7 +163,7 @@ def load_with_fields(path) -> tuple[Surface, dict]:
             if not data.startswith(b"PK"):
                 _sniff(data, kind)
                 raise SurfaceError("not an NPZ (zip) archive")
-            vertices, faces, fields, fmt = _read_npz_mesh(path)
+            vertices, faces, fields, fmt = read_npz_mesh(path)
         else:
             exact_stl = suffix == ".stl" and len(data) >= 84 and \
                 len(data) == 84 + 50 * int(np.frombuffer(data, "<u4", 1, 80)[0])
@@ -275,7 +184,7 @@ def load_with_fields(path) -> tuple[Surface, dict]:
     try:
         if suffix not in _NATIVE_FIELDS and side.is_file():
             try:
-                arrays = _npz_arrays(side)
+                arrays = read_npz_arrays(side)
             except SurfaceError as exc:
                 raise SurfaceError(f"sidecar {side.name}: {exc}") from None
             fields = _align_sidecar(surface.vertices, arrays)
@@ -304,25 +213,6 @@ def validate_fields(fields: dict | None, n: int) -> dict:
             raise SurfaceError(f"field {name!r} has shape {a.shape}; expected ({n},) or ({n}, k)")
         out[name] = a
     return out
-
-
-def _gifti_bytes(surface: Surface, fields: dict) -> bytes:
-    from nibabel.gifti import GiftiDataArray, GiftiImage, GiftiMetaData
-
-    img = GiftiImage()
-    img.add_gifti_data_array(GiftiDataArray(surface.vertices.astype(np.float32),
-                                            intent="NIFTI_INTENT_POINTSET", datatype="NIFTI_TYPE_FLOAT32"))
-    img.add_gifti_data_array(GiftiDataArray(surface.faces.astype(np.int32),
-                                            intent="NIFTI_INTENT_TRIANGLE", datatype="NIFTI_TYPE_INT32"))
-    for name, a in fields.items():
-        integer = a.dtype.kind in "biu"
-        intent = "NIFTI_INTENT_LABEL" if integer else (
-            "NIFTI_INTENT_VECTOR" if a.ndim == 2 and a.shape[1] == 3 else "NIFTI_INTENT_NONE")
-        img.add_gifti_data_array(GiftiDataArray(
-            a.astype(np.int32 if integer else np.float32), intent=intent,
-            datatype="NIFTI_TYPE_INT32" if integer else "NIFTI_TYPE_FLOAT32",
-            meta=GiftiMetaData({"Name": name})))
-    return img.to_bytes()
 
 
 def _check_int32(fields: dict, fmt: str) -> None:
@@ -358,7 +248,7 @@ def save(surface: Surface, path, fields: dict | None = None, *, binary: bool = T
         elif suffix == ".vtk":
             write_vtk(fh, v, f, fields, binary=binary)
         elif suffix == ".gii":
-            fh.write(_gifti_bytes(surface, fields))
+            fh.write(gifti_bytes(surface, fields))
         elif suffix == ".npz":
             write_npz(fh, {"vertices": v, "faces": f, **{f"fields/{k}": a for k, a in fields.items()}})
         elif suffix == ".stl":
@@ -376,27 +266,6 @@ def save(surface: Surface, path, fields: dict | None = None, *, binary: bool = T
     return path
 
 
-def npz_member(zf, name: str):
-    """A writable ``<name>.npy`` zip member with a fixed time stamp (reproducible bytes)."""
-    info = zipfile.ZipInfo(f"{name}.npy", date_time=(1980, 1, 1, 0, 0, 0))
-    info.compress_type = zipfile.ZIP_DEFLATED
-    info.external_attr = 0o644 << 16
-    return zf.open(info, "w", force_zip64=True)
-
-
-def write_npz(fh, arrays: dict) -> None:
-    """Write arrays as a compressed NPZ to a binary file object, reproducibly.
-
-    Unlike ``numpy.savez_compressed`` the zip members carry a fixed time stamp (the
-    zip epoch), so equal arrays give byte-identical files whenever they are written;
-    object arrays are refused (``allow_pickle=False``).
-    """
-    with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-        for name, value in arrays.items():
-            with npz_member(zf, name) as member:
-                np.lib.format.write_array(member, np.asarray(value), allow_pickle=False)
-
-
 def save_fields(path, **arrays) -> Path:
     """Write named arrays to an NPZ file atomically and reproducibly (see :func:`write_npz`)."""
     path = Path(path)
@@ -411,6 +280,6 @@ def load_fields(path) -> dict:
     if not path.is_file():
         raise SurfaceError(f"no such file: {path}")
     try:
-        return _npz_arrays(path)
+        return read_npz_arrays(path)
     except SurfaceError as exc:
         raise SurfaceError(f"{path.name}: {exc}") from None

@@ -12,6 +12,10 @@ import numpy as np
 from ..mesh.surface import SurfaceError
 
 FIELD_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_.\-]*$")
+# Decompressed data may exceed the file by this factor (plus a fixed allowance) before
+# a GIFTI or NPZ file is refused as a decompression bomb (common practice; deflate
+# reaches ~1000:1 on constant data, real meshes ~2-5:1).
+MAX_EXPANSION, EXPANSION_ALLOWANCE = 100, 256 << 20
 
 
 def fan_triangulate(counts: np.ndarray, flat: np.ndarray) -> np.ndarray:
