@@ -7,11 +7,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import scipy.sparse as sp
 
 from ..io.files import atomic_path, save_fields
 from ..io.tables import json_default
 from ..mesh.surface import Surface
+from .labels import vote_labels
 
 _FORMAT_TAG = "surfacekit.correspondence/1"
 
@@ -32,25 +32,6 @@ def _check_confidence(name: str, c, n: int) -> np.ndarray | None:
     if c.shape != (n,):
         raise ValueError(f"{name} must have shape ({n},), got {c.shape}")
     return np.clip(c, 0.0, 1.0)
-
-
-def vote_labels(labels: np.ndarray, pull: np.ndarray, push_from: np.ndarray,
-                push_to: np.ndarray, n_out: int) -> np.ndarray:
-    """Integer labels carried by a majority vote of both map directions.
-
-    Each output vertex j gets one vote (weight 1.5, so it wins ties) for the label at
-    ``pull[j]`` and one vote for the label of every input vertex i with
-    ``push_to[i] == j`` (i = ``push_from``).  Shapes: labels (n_in,), pull (n_out,),
-    push_from/push_to (n_in,); returns (n_out,) with the dtype of `labels`.
-    """
-    uniq, code = np.unique(labels, return_inverse=True)
-    code = code.ravel()
-    rows = np.concatenate([np.arange(n_out), push_to])
-    cols = np.concatenate([code[pull], code[push_from]])
-    w = np.concatenate([np.full(n_out, 1.5), np.ones(len(push_to))])
-    votes = sp.coo_matrix((w, (rows, cols)), shape=(n_out, len(uniq))).tocsr()
-    best = np.asarray(votes.argmax(axis=1)).ravel()
-    return uniq[best].astype(labels.dtype, copy=False)
 
 
 @dataclass
