@@ -33,7 +33,8 @@ from pathlib import Path
 import numpy as np
 from scipy.spatial import cKDTree
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
+# the ground-truth generator is a module of the test suite; benchmarks are scripts beside it
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from groundtruth import benchmark_pairs, make_pair, true_landmarks
 

@@ -19,7 +19,8 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
+# the ground-truth generator is a module of the test suite; benchmarks are scripts beside it
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
 from groundtruth import make_pair
 

@@ -5,9 +5,6 @@ unit sphere, so two meshings of one shape correspond through their sphere
 parameters (surfacekit.mesh.synthetic), and a rotated, vertex-permuted copy has a
 known permutation.
 """
-import sys
-from pathlib import Path
-
 import numpy as np
 import pytest
 from scipy.spatial import cKDTree
@@ -16,8 +13,7 @@ import surfacekit as sk
 from surfacekit.correspondence.fmap import SpectralShape, estimate_fmap, spectral_descriptors
 from surfacekit.correspondence.zoomout import fmap_from_pointmap
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
-from groundtruth import locate_on_sphere_mesh
+from groundtruth import held_out, locate_on_sphere_mesh, make_pair
 
 
 def permuted_rotated(s: sk.Surface, seed: int):
@@ -126,7 +122,7 @@ def test_orientation_term_prefers_direct_over_mirror_map():
 
 def test_intrinsic_fmap_is_invariant_to_rigid_motion():
     """Intrinsic estimation sees only the operators, so a rigid motion changes nothing
-    (STYLE.md; definition)."""
+    (definition: the Laplace-Beltrami operator is invariant under isometries)."""
     s, _ = sk.synthetic.organ_surface("liver", 1200, seed=3)
     R = sk.synthetic.random_rotation(8)
     t = sk.Surface(s.vertices @ R.T + 5.0, s.faces)
@@ -164,16 +160,29 @@ def test_bad_inputs_raise_clear_errors(kidney_pair):
         sk.match(two, b)
 
 
-def test_landmarks_option_is_respected(kidney_pair):
-    """Four true pairs (from the sphere parameters, outside truth) given as landmarks:
-    the map must send each source landmark close to its partner."""
+def test_landmarks_option_keeps_the_rest_of_the_map_right(kidney_pair):
+    """Four true pairs (from the sphere parameters, outside truth) given as landmarks.
+
+    The solver imposes the pairs on the map, so the error at the landmarks themselves
+    says nothing; it is measured at every OTHER source vertex against the sphere-parameter
+    truth (geodesic error / sqrt(area), common practice since Kim, Lipman & Funkhouser,
+    "Blended intrinsic maps", SIGGRAPH 2011): as accurate as the map without landmarks (mean ~0.011, max
+    ~0.04 measured), i.e. the heat kernels at the landmarks and the landmark weight in the
+    non-rigid fit do not pull the rest of the surface off.
+    """
     a, sa, b, sb = kidney_pair
     src_ids = np.array([0, 500, 1000, 1500])
     tgt_ids = cKDTree(sb).query(sa[src_ids])[1]
     opts = sk.MatchOptions(landmarks=tuple(zip(src_ids.tolist(), tgt_ids.tolist())))
     corr = sk.match(a, b, opts)
-    err = sk.geodesic_error(b, corr.source_to_target[src_ids], tgt_ids)
-    assert err.max() < 0.03
+    np.testing.assert_array_equal(corr.source_to_target[src_ids], tgt_ids)  # the contract: imposed
+    face, bary = locate_on_sphere_mesh(sb, b.faces, sa)  # true point on b of each source vertex
+    others = np.setdiff1d(np.arange(a.n_vertices), src_ids)
+    err = sk.geodesic_error(b, corr.source_to_target[others], (face[others], bary[others]))
+    plain = sk.match(a, b)
+    err_plain = sk.geodesic_error(b, plain.source_to_target[others], (face[others], bary[others]))
+    assert err.mean() < 0.02 and err.max() < 0.06, (err.mean(), err.max())
+    assert err.mean() <= 1.1 * err_plain.mean(), (err.mean(), err_plain.mean())
     with pytest.raises(ValueError, match="landmarks"):
         sk.match(a, b, sk.MatchOptions(landmarks=((0, 10**6),)))
 
@@ -183,10 +192,10 @@ def test_landmarks_option_is_respected(kidney_pair):
 def test_near_symmetric_shape_in_any_pose_has_no_flip(kind):
     """Near-symmetric organs scanned in several random poses, with local growth: no
     180-degree flip (a flip gives errors ~0.3-0.5 of sqrt(area)).  Truth from the
-    sphere parameters (outside the solver)."""
-    from groundtruth import make_pair
-
-    for seed in (31, 32, 33):
+    sphere parameters (outside the solver).  The solver's flip threshold and energy
+    weights were tuned on the benchmark pairs; these generator seeds are held out
+    (never produced by ``benchmark_pairs``)."""
+    for seed in held_out(31, 32, 33):
         p = make_pair(kind, "growth", n_source=2000, n_target=2400, seed=seed)
         corr = sk.match(p.source, p.target)
         face, bary = p.target_truth
