@@ -5,6 +5,7 @@ whole file runs in about a minute.  Reference values are named beside each check
 """
 from __future__ import annotations
 
+import csv
 import json
 import os
 import shlex
@@ -268,7 +269,11 @@ def test_cohort_partial_failure_exit_code_and_resume(tmp_path, capsys):
             "--target-vertices", "800", "--quiet"]
     code, _, err = run(args, capsys)
     assert code == 3 and "1 of 3 subjects failed" in err
-    rows = (tmp_path / "out" / "cohort_summary.csv").read_text()
-    assert "broken.ply" in rows or "failed" in rows
+    with open(tmp_path / "out" / "cohort_summary.csv", newline="") as f:
+        rows = {r["subject"]: r for r in csv.DictReader(f)}
+    assert {k: r["status"] for k, r in rows.items()} == {"a": "ok", "b": "ok", "c": "failed"}
+    assert rows["a"]["error"] == rows["b"]["error"] == ""
+    assert rows["c"]["error"] == "SurfaceError: broken.ply: PLY header has no end_header line"
+    assert rows["c"]["volume_ml"] == "" and float(rows["b"]["volume_ml"]) > 0  # no numbers for a failure
     code, out, _ = run(args + ["--json"], capsys)
     assert code == 3 and json.loads(out)["cached"] == 2
