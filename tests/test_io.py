@@ -6,8 +6,10 @@ import os
 import struct
 import zipfile
 
+import nibabel as nib
 import numpy as np
 import pytest
+import trimesh
 from scipy.spatial import cKDTree
 
 import surfacekit as sk
@@ -81,7 +83,6 @@ def test_npz_keeps_dtypes_exactly(tmp_path, sphere, fields):
                                         ("off", False), ("stl", True), ("stl", False)])
 def test_trimesh_reads_our_files(tmp_path, sphere, ext, binary):
     """Reference reader: trimesh (independent parsers) sees the same mesh we wrote."""
-    trimesh = pytest.importorskip("trimesh")
     path = tmp_path / f"ref.{ext}"
     sk.save(sphere, path, binary=binary)
     mesh = trimesh.load_mesh(str(path), process=False)
@@ -94,7 +95,6 @@ def test_trimesh_reads_our_files(tmp_path, sphere, ext, binary):
 
 def test_trimesh_reads_ply_vertex_properties(tmp_path, sphere, fields):
     """Reference reader: trimesh's PLY parser finds our custom vertex properties."""
-    trimesh = pytest.importorskip("trimesh")
     path = tmp_path / "props.ply"
     sk.save(sphere, path, fields=fields)
     raw = trimesh.load_mesh(str(path), process=False).metadata["_ply_raw"]["vertex"]["data"]
@@ -108,7 +108,6 @@ def test_trimesh_reads_ply_vertex_properties(tmp_path, sphere, fields):
                                     ("obj", {}), ("off", {}), ("stl", {}), ("stl_ascii", {})])
 def test_we_read_trimesh_files(tmp_path, sphere, ext, kw):
     """Files written by an independent writer (trimesh) load with the same geometry."""
-    trimesh = pytest.importorskip("trimesh")
     data = trimesh.Trimesh(sphere.vertices, sphere.faces, process=False).export(file_type=ext, **kw)
     path = tmp_path / f"theirs.{ext.split('_')[0]}"
     path.write_bytes(data if isinstance(data, bytes) else data.encode())
@@ -119,7 +118,6 @@ def test_we_read_trimesh_files(tmp_path, sphere, ext, kw):
 
 def test_nibabel_reads_our_gifti(tmp_path, sphere, fields):
     """Reference reader: nibabel's GIFTI loader finds POINTSET, TRIANGLE and named field arrays."""
-    nib = pytest.importorskip("nibabel")
     path = tmp_path / "lh.organ.surf.gii"
     sk.save(sphere, path, fields={"thickness": fields["thickness"]})
     img = nib.load(str(path))

@@ -1,5 +1,6 @@
 """Label volume -> surface in world mm (surfacekit.preparation.segmentation), and the full path to a
 prepared surface.  Volumes are small (<= 110 x 90 x 40) and invented (synthetic)."""
+import nibabel as nib
 import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
@@ -103,7 +104,6 @@ def test_mask_to_prepared_surface_meets_the_done_criteria(mask_case):
 
 
 def test_nifti_file_matches_array_and_records_the_file(tmp_path):
-    nib = pytest.importorskip("nibabel")
     vol = _ellipsoid_volume()[::2, ::2, :]  # smaller and faster
     affine = _oblique_affine()
     path = tmp_path / "labels.nii.gz"
