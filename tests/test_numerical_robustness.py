@@ -6,7 +6,7 @@ import pytest
 import scipy.sparse.linalg as spla
 
 import surfacekit as sk
-from surfacekit.mesh.operators import EigenSolverWarning
+from surfacekit.mesh.eigen import EigenSolverWarning
 
 
 def _with_slivers(s: sk.Surface, n_needles: int = 40, seed: int = 0) -> sk.Surface:

@@ -8,7 +8,7 @@ import pytest
 
 import surfacekit as sk
 from surfacekit.preparation import remesh, repair
-from surfacekit.mesh.operators import cotangent_laplacian
+from surfacekit.mesh.laplacian import cotangent_laplacian
 from surfacekit.preparation.pipeline import restore_volume, taubin_smooth
 from surfacekit.preparation.mesh_quality import enclosed_centroid
 

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .operators import laplacian
+from .laplacian import laplacian
 from .surface import Surface
 
 
@@ -19,12 +19,6 @@ def _vertex_area(s: Surface, area: str) -> np.ndarray:
     if area == "barycentric":
         return s.vertex_areas
     raise ValueError(f"area must be 'voronoi' or 'barycentric', got {area!r}")
-
-
-def _boundary_mask(s: Surface) -> np.ndarray:
-    mask = np.zeros(s.n_vertices, dtype=bool)
-    mask[s.boundary_edges.ravel()] = True
-    return mask
 
 
 def mean_curvature(s: Surface, *, area: str = "voronoi", method: str = "auto") -> np.ndarray:
@@ -62,7 +56,7 @@ def mean_curvature(s: Surface, *, area: str = "voronoi", method: str = "auto") -
     normal_part = np.einsum("ij,ij->i", lx, s.vertex_normals)
     with np.errstate(divide="ignore", invalid="ignore"):
         h = normal_part / (2.0 * a)
-    h[(a <= 0) | _boundary_mask(s)] = np.nan
+    h[(a <= 0) | s.connectivity.boundary_vertices] = np.nan
     return h
 
 
@@ -82,5 +76,5 @@ def gaussian_curvature(s: Surface, *, area: str = "voronoi") -> np.ndarray:
     a = _vertex_area(s, area)
     with np.errstate(divide="ignore", invalid="ignore"):
         k = (2.0 * np.pi - angle_sum) / a
-    k[(a <= 0) | _boundary_mask(s)] = np.nan
+    k[(a <= 0) | s.connectivity.boundary_vertices] = np.nan
     return k

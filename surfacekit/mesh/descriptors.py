@@ -23,7 +23,7 @@ from __future__ import annotations
 import numpy as np
 
 from .curvature import gaussian_curvature, mean_curvature
-from .operators import Eigenbasis, eigenbasis
+from .eigen import Eigenbasis, eigenbasis
 from .surface import Surface
 
 __all__ = [

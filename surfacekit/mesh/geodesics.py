@@ -13,6 +13,7 @@ from __future__ import annotations
 import numpy as np
 
 from .patches import patch_descriptors  # noqa: F401  public name of this module
+from .sampling import greedy_farthest
 from .surface import Surface, SurfaceError
 
 
@@ -225,19 +226,13 @@ def farthest_point_sampling(s: Surface, n: int, seed: int = 0, *, t_coef: float 
         raise ValueError(f"n must be between 1 and {s.n_vertices}, got {n}")
     solver = GeodesicSolver.for_surface(s, t_coef=t_coef)
     rng = np.random.default_rng(seed)
-    samples = np.empty(n, dtype=np.int64)
-    used = np.unique(s.faces)  # vertices of no face are never sampled
+    used = s.connectivity.used_vertices  # vertices of no face are never sampled
     if n > used.size:
         raise ValueError(f"n must be at most the {used.size} vertices used by faces, got {n}")
-    unused = np.ones(s.n_vertices, dtype=bool)
-    unused[used] = False
-    samples[0] = used[rng.integers(used.size)]
-    nearest = solver.distance(samples[:1])
-    for i in range(1, n):
-        nearest[samples[:i]] = 0.0
-        samples[i] = int(np.argmax(np.where(unused, -1.0, nearest)))
-        nearest = np.minimum(nearest, solver.distance(samples[i:i + 1]))
-    nearest[samples] = 0.0
+    eligible = np.zeros(s.n_vertices, dtype=bool)
+    eligible[used] = True
+    first = int(used[rng.integers(used.size)])
+    samples, nearest = greedy_farthest(first, n, lambda i: solver.distance([i]), eligible)
     return (samples, nearest) if return_distances else samples
 
 

@@ -48,12 +48,6 @@ def tangent_frames(s: Surface) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return e1, np.cross(n, e1), n
 
 
-def _edge_graph(s: Surface) -> sp.csr_matrix:
-    e, w = s.edges, s.edge_lengths
-    g = sp.coo_matrix((w, (e[:, 0], e[:, 1])), shape=(s.n_vertices,) * 2)
-    return (g + g.T).tocsr()
-
-
 def local_polar_coordinates(s: Surface, radius: float, centers=None, *, max_block: int = 4_000_000):
     """Polar coordinates of every centre's neighbours within geodesic `radius` (mm).
 
@@ -67,7 +61,7 @@ def local_polar_coordinates(s: Surface, radius: float, centers=None, *, max_bloc
     centers = np.arange(s.n_vertices) if centers is None else np.atleast_1d(np.asarray(centers))
     if centers.size and (centers.min() < 0 or centers.max() >= s.n_vertices):
         raise ValueError(f"centre vertex index out of range for {s.n_vertices} vertices")
-    graph = _edge_graph(s)
+    graph = s.connectivity.edge_matrix(s.edge_lengths)  # edge graph weighted by length
     v = s.vertices
     e1, e2, nrm = tangent_frames(s)
     chunk = max(1, int(max_block // max(s.n_vertices, 1)))

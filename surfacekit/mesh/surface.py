@@ -10,8 +10,9 @@ from functools import cached_property
 from typing import Any
 
 import numpy as np
-import scipy.sparse as sp
-from scipy.sparse.csgraph import connected_components
+
+from .connectivity import Connectivity
+from .limits import DEGENERATE_AREA
 
 
 class SurfaceError(ValueError):
@@ -92,7 +93,7 @@ class Surface:
         self._vertices = _readonly(v)
         self._faces = _readonly(f)
         self.metadata: dict = dict(metadata or {})
-        # Operators and eigenbases computed on this surface (see operators.py).
+        # Operators and eigenbases computed on this surface (laplacian.py, eigen.py).
         self.cache: dict = {}
 
     # ------------------------------------------------------------------ basics
@@ -108,12 +109,21 @@ class Surface:
         return trimesh.Trimesh(self.vertices.copy(), self.faces.copy(), process=False)
 
     def copy_with(self, vertices=None, faces=None, metadata=None) -> Surface:
-        """A new Surface sharing what is not replaced."""
-        return Surface(
+        """A new Surface sharing what is not replaced.
+
+        With the same faces and vertex count the new surface shares this one's
+        `connectivity` object; derived geometry (areas, operators) is recomputed.
+        """
+        new = Surface(
             self._vertices if vertices is None else vertices,
             self._faces if faces is None else faces,
             metadata=dict(self.metadata if metadata is None else metadata),
         )
+        same_faces = faces is None or faces is self._faces or (
+            np.shape(faces) == self._faces.shape and np.array_equal(new._faces, self._faces))
+        if same_faces and new.n_vertices == self.n_vertices:
+            new.__dict__["connectivity"] = self.connectivity  # the cached_property's slot
+        return new
 
     @property
     def vertices(self) -> np.ndarray:
@@ -212,28 +222,16 @@ class Surface:
 
     # ----------------------------------------------------------- topology
     @cached_property
-    def _half_edges(self) -> np.ndarray:
-        f = self._faces
-        return np.stack([f, np.roll(f, -1, axis=1)], axis=2).reshape(-1, 2)
+    def connectivity(self) -> Connectivity:
+        """Edges, incidences, boundary loops and components of the faces (built on request).
 
-    @cached_property
-    def _edge_index(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        sorted_he = np.sort(self._half_edges, axis=1)
-        # 1-D keys i * n + j sort like the rows (i, j) and unique far faster than axis=0
-        keys = sorted_he[:, 0] * np.int64(self.n_vertices) + sorted_he[:, 1]
-        _, first, inverse, counts = np.unique(keys, return_index=True, return_inverse=True,
-                                              return_counts=True)
-        return sorted_he[first], inverse.ravel(), counts
+        Shared with every surface made from this one by :meth:`copy_with` with the
+        same faces, so moving the vertices never rebuilds it.
+        """
+        return Connectivity(self._faces, self.n_vertices)
 
-    @cached_property
-    def edges(self) -> np.ndarray:
-        """(e, 2) unique undirected edges, each sorted (i < j)."""
-        return _readonly(self._edge_index[0])
-
-    @cached_property
-    def edge_face_counts(self) -> np.ndarray:
-        """(e,) number of faces on each edge: 1 boundary, 2 manifold interior, >2 non-manifold."""
-        return _readonly(self._edge_index[2])
+    # edges, edge_face_counts, boundary_loops, n_components, genus and the other
+    # topological properties are read from `connectivity` (defined after the class)
 
     @cached_property
     def edge_lengths(self) -> np.ndarray:
@@ -246,90 +244,13 @@ class Surface:
         return float(self.edge_lengths.mean())
 
     @cached_property
-    def non_manifold_edges(self) -> np.ndarray:
-        """(k, 2) edges shared by more than two faces."""
-        return _readonly(self.edges[self.edge_face_counts > 2])
-
-    @cached_property
-    def boundary_edges(self) -> np.ndarray:
-        """(b, 2) directed boundary edges, oriented as in their single face."""
-        _, inverse, counts = self._edge_index
-        on_boundary = counts[inverse] == 1
-        return _readonly(self._half_edges[on_boundary])
-
-    @cached_property
-    def boundary_loops(self) -> list[np.ndarray]:
-        """Boundary loops as arrays of vertex indices, in boundary-edge order.
-
-        Loops are traced on directed boundary edges; where a vertex touches two
-        boundary loops (non-manifold vertex) the tracing still terminates.
-        """
-        be = self.boundary_edges
-        if len(be) == 0:
-            return []
-        order = np.argsort(be[:, 0], kind="stable")
-        nxt_edge: dict[int, list[int]] = {}
-        for idx in order:
-            nxt_edge.setdefault(int(be[idx, 0]), []).append(int(idx))
-        used = np.zeros(len(be), dtype=bool)
-        loops = []
-        for e0 in range(len(be)):
-            if used[e0]:
-                continue
-            loop = []
-            e = e0
-            while e is not None and not used[e]:
-                used[e] = True
-                loop.append(int(be[e, 0]))
-                candidates = [c for c in nxt_edge.get(int(be[e, 1]), []) if not used[c]]
-                e = candidates[0] if candidates else None
-            loops.append(np.asarray(loop, dtype=np.int64))
-        return loops
-
-    @cached_property
-    def _components(self) -> tuple[int, np.ndarray]:
+    def degenerate_faces(self) -> np.ndarray:
+        """(m,) bool: faces with a repeated vertex or an area of at most
+        ``DEGENERATE_AREA`` times the squared mean edge length (see `limits`)."""
         f = self._faces
-        n = self.n_vertices
-        rows = np.concatenate([f[:, 0], f[:, 1], f[:, 2]])
-        cols = np.concatenate([f[:, 1], f[:, 2], f[:, 0]])
-        adj = sp.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(n, n))
-        return connected_components(adj, directed=False)
-
-    @property
-    def vertex_components(self) -> np.ndarray:
-        """(n,) component label of each vertex (isolated vertices get their own label)."""
-        return self._components[1]
-
-    @cached_property
-    def n_components(self) -> int:
-        """Number of connected components among vertices used by faces."""
-        used = np.unique(self._faces)
-        return len(np.unique(self._components[1][used]))
-
-    @cached_property
-    def n_unreferenced_vertices(self) -> int:
-        return int(self.n_vertices - len(np.unique(self._faces)))
-
-    @property
-    def is_closed(self) -> bool:
-        """True when every edge has exactly two faces (watertight, edge-manifold)."""
-        return bool(np.all(self.edge_face_counts == 2))
-
-    @property
-    def is_edge_manifold(self) -> bool:
-        return bool(np.all(self.edge_face_counts <= 2))
-
-    @cached_property
-    def euler_characteristic(self) -> int:
-        """V - E + F over vertices used by faces."""
-        v_used = self.n_vertices - self.n_unreferenced_vertices
-        return int(v_used - len(self.edges) + self.n_faces)
-
-    @cached_property
-    def genus(self) -> int:
-        """Genus from χ = 2c - 2g - b (c components, b boundary loops); meaningful for manifolds."""
-        b = len(self.boundary_loops)
-        return int(max(0, (2 * self.n_components - b - self.euler_characteristic) // 2))
+        repeated = (f[:, 0] == f[:, 1]) | (f[:, 1] == f[:, 2]) | (f[:, 0] == f[:, 2])
+        floor = DEGENERATE_AREA * max(self.mean_edge_length, np.finfo(float).tiny) ** 2
+        return _readonly(repeated | (self.face_areas <= floor))
 
     # -------------------------------------------------------- global measures
     @cached_property
@@ -361,3 +282,17 @@ class Surface:
     def centroid(self) -> np.ndarray:
         """Area-weighted centroid of the surface (mm)."""
         return self.vertex_areas @ self._vertices / max(self.area, np.finfo(float).tiny)
+
+
+def _topology(name: str) -> property:
+    """A read-only Surface property answered by its `Connectivity` (same name, same doc)."""
+    return property(lambda self: getattr(self.connectivity, name),
+                    doc=getattr(Connectivity, name).__doc__)
+
+
+# Topology lives in the shared Connectivity; the Surface answers these from it.
+for _name in ("edges", "edge_face_counts", "non_manifold_edges", "boundary_edges",
+              "boundary_loops", "vertex_components", "n_components", "n_unreferenced_vertices",
+              "is_closed", "is_edge_manifold", "euler_characteristic", "genus"):
+    setattr(Surface, _name, _topology(_name))
+del _name

@@ -1,8 +1,9 @@
 """Mesh quality measured as data: the flaws that make spectral and geodesic analysis wrong.
 
 `quality_report` returns a `QualityReport` dataclass (``to_dict``/``to_json``) whose
-``warnings`` name every flaw in plain words.  The detection helpers here are also
-used by the repair steps in `surfacekit.repair`.
+``warnings`` name every flaw in plain words.  Topological flaws come from the
+surface's `Connectivity`; the thresholds (needles, degenerate faces, coincident
+vertices) from `surfacekit.mesh.limits`, shared with the Laplacian's choice.
 """
 from __future__ import annotations
 
@@ -14,14 +15,8 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from ..mesh.limits import MERGE_TOLERANCE, NEEDLE_ANGLE_DEGREES
 from ..mesh.surface import Surface
-
-#: coordinates closer than this fraction of the bounding-box diagonal count as one point
-MERGE_TOLERANCE = 1e-7
-#: faces with area below this fraction of the squared mean edge length count as degenerate
-DEGENERATE_AREA = 1e-12
-#: triangles with a smaller angle (degrees) are flagged as needles
-NEEDLE_DEGREES = 1.0
 
 
 # ---------------------------------------------------------------- detection helpers
@@ -29,7 +24,8 @@ def coincident_vertex_map(vertices: np.ndarray, tolerance: float | None = None) 
     """(n,) index of the representative (lowest index) of each group of coincident vertices.
 
     Vertices within ``tolerance`` (mm; default ``MERGE_TOLERANCE`` x bounding-box
-    diagonal) are grouped transitively through a k-d tree radius query.
+    diagonal, see `surfacekit.mesh.limits`) are grouped transitively through a k-d
+    tree radius query.
     """
     v = np.asarray(vertices, dtype=np.float64)
     n = len(v)
@@ -47,100 +43,10 @@ def coincident_vertex_map(vertices: np.ndarray, tolerance: float | None = None) 
 
 
 def degenerate_faces(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
-    """(m,) bool: faces with a repeated vertex index or (numerically) zero area."""
-    f = faces
-    repeated = (f[:, 0] == f[:, 1]) | (f[:, 1] == f[:, 2]) | (f[:, 0] == f[:, 2])
-    v = vertices
-    cross = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])
-    area2 = np.einsum("ij,ij->i", cross, cross)  # (2 area)^2
-    e = np.linalg.norm(v[f[:, 1]] - v[f[:, 0]], axis=1)
-    scale = float(np.mean(e)) if len(e) else 1.0
-    return repeated | (area2 <= (2 * DEGENERATE_AREA * scale**2) ** 2)
-
-
-def row_keys(rows: np.ndarray) -> np.ndarray:
-    """(r,) int64 key identifying each row of a non-negative int array (r, 2) or (r, 3).
-
-    Rows are packed into one integer (mixed radix), which makes ``np.unique`` on
-    rows a 1-D sort instead of a much slower row-wise one; arrays too large to pack
-    fall back to dense ranks from a lexicographic sort.
-    """
-    rows = np.asarray(rows, dtype=np.int64)
-    base = int(rows.max()) + 1 if rows.size else 1
-    if base ** rows.shape[1] < 2**62:
-        key = rows[:, 0].copy()
-        for c in range(1, rows.shape[1]):
-            key = key * base + rows[:, c]
-        return key
-    order = np.lexsort(rows.T[::-1])
-    new = np.r_[True, np.any(rows[order][1:] != rows[order][:-1], axis=1)]
-    key = np.empty(len(rows), dtype=np.int64)
-    key[order] = np.cumsum(new) - 1
-    return key
-
-
-def duplicate_faces(faces: np.ndarray) -> np.ndarray:
-    """(m,) bool: faces whose vertex set repeats an earlier face (either orientation)."""
+    """(m,) bool: :attr:`Surface.degenerate_faces` (repeated vertex, zero area) on plain arrays."""
     if len(faces) == 0:
         return np.zeros(0, bool)
-    _, first = np.unique(row_keys(np.sort(faces, axis=1)), return_index=True)
-    dup = np.ones(len(faces), bool)
-    dup[first] = False
-    return dup
-
-
-def edge_pairs(faces: np.ndarray):
-    """Half-edge bookkeeping shared by the topology checks.
-
-    Returns ``(he, inverse, counts, pair_a, pair_b)``: half-edges ``he`` (3m, 2) with
-    half-edge ``h`` in face ``h // 3`` starting at corner ``h % 3``; ``inverse`` maps a
-    half-edge to its undirected edge; ``counts`` faces per undirected edge; and for
-    every edge with exactly two faces the two half-edge ids ``pair_a``, ``pair_b``.
-    """
-    he = np.stack([faces, np.roll(faces, -1, axis=1)], axis=2).reshape(-1, 2)
-    _, inverse, counts = np.unique(row_keys(np.sort(he, axis=1)), return_inverse=True,
-                                   return_counts=True)
-    inverse = inverse.ravel()
-    two = counts[inverse] == 2
-    ids = np.flatnonzero(two)
-    ids = ids[np.argsort(inverse[ids], kind="stable")]
-    return he, inverse, counts, ids[0::2], ids[1::2]
-
-
-def inconsistent_edges(faces: np.ndarray) -> int:
-    """Number of two-face edges whose faces traverse them in the same direction (flipped faces)."""
-    he, _, _, a, b = edge_pairs(faces)
-    return int(np.count_nonzero(he[a, 0] == he[b, 0]))
-
-
-def vertex_fans(faces: np.ndarray, n_vertices: int) -> np.ndarray:
-    """(n,) number of face fans around each vertex (0 unused, 1 manifold, >1 non-manifold).
-
-    Two corners at a vertex are in one fan when their faces share a two-face edge
-    through that vertex; a vertex whose corners fall into several fans is a
-    pinch point (non-manifold vertex).
-    """
-    labels = corner_fan_labels(faces)
-    if len(labels) == 0:
-        return np.zeros(n_vertices, np.int64)
-    pairs = np.unique(row_keys(np.stack([faces.ravel(), labels], axis=1)))
-    base = max(int(faces.max()), int(labels.max())) + 1
-    return np.bincount(pairs // base, minlength=n_vertices)
-
-
-def corner_fan_labels(faces: np.ndarray) -> np.ndarray:
-    """(3m,) fan label of each face corner (corner ``3 f + c`` is vertex ``faces[f, c]``)."""
-    m = len(faces)
-    if m == 0:
-        return np.zeros(0, np.int64)
-    he, _, _, a, b = edge_pairs(faces)
-    start_a, end_a = a, 3 * (a // 3) + (a % 3 + 1) % 3
-    start_b, end_b = b, 3 * (b // 3) + (b % 3 + 1) % 3
-    same = he[a, 0] == he[b, 0]  # same direction: start meets start
-    rows = np.concatenate([start_a, end_a])
-    cols = np.concatenate([np.where(same, start_b, end_b), np.where(same, end_b, start_b)])
-    g = sp.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(3 * m, 3 * m))
-    return connected_components(g, directed=False)[1]
+    return Surface(vertices, faces).degenerate_faces
 
 
 def enclosed_centroid(surface: Surface) -> np.ndarray:
@@ -248,14 +154,14 @@ def quality_report(surface: Surface) -> QualityReport:
     QualityReport
     """
     s = surface
-    f, v = s.faces, s.vertices
+    f, v, conn = s.faces, s.vertices, s.connectivity
     rep_map = coincident_vertex_map(v)
     n_dup_v = int(np.count_nonzero(rep_map != np.arange(s.n_vertices)))
-    n_dup_f = int(duplicate_faces(f).sum())
-    n_degen = int(degenerate_faces(v, f).sum())
+    n_dup_f = int(conn.duplicate_faces.sum())
+    n_degen = int(s.degenerate_faces.sum())
     n_nm_edges = len(s.non_manifold_edges)
-    n_nm_vertices = int(np.count_nonzero(vertex_fans(f, s.n_vertices) > 1))
-    n_incons = inconsistent_edges(f)
+    n_nm_vertices = int(np.count_nonzero(conn.vertex_fans > 1))
+    n_incons = conn.n_inconsistent_edges
     loops = s.boundary_loops
     watertight = s.is_closed
     oriented = n_incons == 0 and n_nm_edges == 0
@@ -296,7 +202,7 @@ def quality_report(surface: Surface) -> QualityReport:
                         " (surface pinched at a point)")
     if s.n_unreferenced_vertices:
         warnings.append(f"{_plural(s.n_unreferenced_vertices, 'unreferenced vertex', 'unreferenced vertices')}")
-    if len(angles) and angles.min() < NEEDLE_DEGREES:
+    if len(angles) and angles.min() < NEEDLE_ANGLE_DEGREES:
         warnings.append(f"needle triangles (smallest angle {angles.min():.2g} degrees)")
     if genus is not None and genus > 0 and watertight:
         warnings.append(f"genus {genus}: the surface has {_plural(genus, 'handle')} "

@@ -98,7 +98,7 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
     """
     from scipy.sparse.linalg import cg
 
-    from ..mesh.operators import cotangent_laplacian
+    from ..mesh.laplacian import cotangent_laplacian
 
     x = np.array(vertices, dtype=np.float64)
     f = np.asarray(faces)
@@ -293,10 +293,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
                            reference_volume_mm3=reference, parameters=params)
 
     if smooth:
-        fixed = None
-        if not s.is_closed:
-            fixed = np.zeros(s.n_vertices, bool)
-            fixed[s.boundary_edges.ravel()] = True
+        fixed = None if s.is_closed else s.connectivity.boundary_vertices
         if fairing_scale_mm is None:
             spacing = metadata.get("spacing")
             fairing_scale_mm = float(max(spacing)) if spacing else s.mean_edge_length

@@ -7,14 +7,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .mesh_quality import edge_pairs, row_keys
 from .repair import compact, umbrella_matrix
+from ..mesh.connectivity import Connectivity, row_keys
 from ..mesh.surface import Surface
-
-
-def _edge_keys(edges: np.ndarray) -> np.ndarray:
-    """Packed int64 keys of sorted vertex pairs (base 2**31: comparable across calls)."""
-    return edges[:, 0] * np.int64(2**31) + edges[:, 1]
 
 
 def _corner_angle(p: np.ndarray, q: np.ndarray, r: np.ndarray) -> np.ndarray:
@@ -38,7 +33,8 @@ def delaunay_flips(v: np.ndarray, f: np.ndarray, rounds: int = 10, max_bend_deg:
     total = 0
     cos_bend = np.cos(np.deg2rad(max_bend_deg))
     for _ in range(int(rounds)):
-        he, _, _, a_id, b_id = edge_pairs(f)
+        conn = Connectivity(f, len(v))
+        he, (a_id, b_id) = conn.half_edges, conn.interior_pairs
         f1, f2 = a_id // 3, b_id // 3
         a, b = he[a_id, 0], he[a_id, 1]
         ok = he[b_id, 0] == b  # consistently oriented pair: f2 runs b -> a
@@ -52,9 +48,7 @@ def delaunay_flips(v: np.ndarray, f: np.ndarray, rounds: int = 10, max_bend_deg:
         cand = np.flatnonzero(ok & flat & (excess > 1e-9) & (c != d))
         if len(cand) == 0:
             break
-        existing = _edge_keys(np.sort(he, axis=1))
-        new_keys = _edge_keys(np.sort(np.stack([c[cand], d[cand]], axis=1), axis=1))
-        cand = cand[~np.isin(new_keys, existing)]
+        cand = cand[~conn.has_edges(np.stack([c[cand], d[cand]], axis=1))]
         if len(cand) == 0:
             break
         # independent set: an edge flips when it has the largest excess at both its faces
@@ -65,7 +59,7 @@ def delaunay_flips(v: np.ndarray, f: np.ndarray, rounds: int = 10, max_bend_deg:
         win = (score >= priority[f1[cand]]) & (score >= priority[f2[cand]])
         cand = cand[win]
         # two flips creating the same new edge would make it non-manifold: keep one
-        keys = _edge_keys(np.sort(np.stack([c[cand], d[cand]], axis=1), axis=1))
+        keys = row_keys(np.sort(np.stack([c[cand], d[cand]], axis=1), axis=1))
         cand = cand[np.unique(keys, return_index=True)[1]]
         f[f1[cand]] = np.stack([c[cand], a[cand], d[cand]], axis=1)
         f[f2[cand]] = np.stack([d[cand], b[cand], c[cand]], axis=1)
@@ -82,16 +76,15 @@ def collapse_short_edges(v: np.ndarray, f: np.ndarray, ratio: float = 0.25):
     exactly two neighbours (the link condition, Dey et al. 1999), so the mesh
     stays a manifold of the same topology.  Returns ``(v, f, n_collapsed)``.
     """
-    import scipy.sparse as sp
-
-    he, _, _, a_id, _ = edge_pairs(f)
-    i, j = he[a_id, 0], he[a_id, 1]
+    conn = Connectivity(f, len(v))
+    a_id = conn.interior_pairs[0]
+    i, j = conn.half_edges[a_id, 0], conn.half_edges[a_id, 1]
     length = np.linalg.norm(v[i] - v[j], axis=1)
     short = np.flatnonzero(length < ratio * length.mean())
     if len(short) == 0:
         return v, f, 0
     n = len(v)
-    adj = sp.coo_matrix((np.ones(2 * len(i)), (np.r_[i, j], np.r_[j, i])), shape=(n, n)).tocsr()
+    adj = conn.vertex_adjacency()
     common = np.asarray(adj[i[short]].multiply(adj[j[short]]).sum(axis=1)).ravel()
     short = short[common == 2]
     # independent set: each vertex in at most one collapse (shortest edges first)
@@ -155,10 +148,10 @@ def improve_triangles(vertices: np.ndarray, faces: np.ndarray, rounds: int = 3
 
 def _midpoint_subdivide(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Split every triangle into four at its edge midpoints (the shape is unchanged)."""
-    he = np.sort(np.concatenate([f[:, [0, 1]], f[:, [1, 2]], f[:, [2, 0]]]), axis=1)
-    _, first, inv = np.unique(row_keys(he), return_index=True, return_inverse=True)
-    mid = len(v) + inv.reshape(3, -1).T  # (m, 3) midpoint of edges 01, 12, 20
-    v = np.vstack([v, 0.5 * (v[he[first, 0]] + v[he[first, 1]])])
+    conn = Connectivity(f, len(v))
+    e = conn.edges
+    mid = len(v) + conn.half_edge_edge.reshape(-1, 3)  # (m, 3) midpoint of edges 01, 12, 20
+    v = np.vstack([v, 0.5 * (v[e[:, 0]] + v[e[:, 1]])])
     a, b, c = f[:, 0], f[:, 1], f[:, 2]
     ab, bc, ca = mid[:, 0], mid[:, 1], mid[:, 2]
     f = np.concatenate([np.stack(t, axis=1) for t in

@@ -10,25 +10,14 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order, connected_components
 
-from .mesh_quality import (
-    coincident_vertex_map,
-    corner_fan_labels,
-    degenerate_faces,
-    duplicate_faces,
-    edge_pairs,
-    inconsistent_edges,
-    row_keys,
-)
+from .mesh_quality import coincident_vertex_map, degenerate_faces
+from ..mesh.connectivity import Connectivity
 from ..mesh.surface import Surface, SurfaceError
 
 
 def umbrella_matrix(f: np.ndarray, n: int) -> sp.csr_matrix:
     """Row-normalised vertex adjacency W (n, n): ``(W x)_i`` = mean of i's neighbours."""
-    e = np.concatenate([f[:, [0, 1]], f[:, [1, 2]], f[:, [2, 0]]])
-    e = np.sort(e, axis=1)
-    e = e[np.unique(row_keys(e), return_index=True)[1]]
-    a = sp.coo_matrix((np.ones(2 * len(e)), (np.r_[e[:, 0], e[:, 1]], np.r_[e[:, 1], e[:, 0]])),
-                      shape=(n, n)).tocsr()
+    a = Connectivity(f, n).vertex_adjacency()
     deg = np.asarray(a.sum(axis=1)).ravel()
     return sp.diags(1.0 / np.maximum(deg, 1)) @ a
 
@@ -82,7 +71,7 @@ def remove_degenerate_faces(v: np.ndarray, f: np.ndarray):
 
 def remove_duplicate_faces(v: np.ndarray, f: np.ndarray):
     """Keep the first of faces with the same vertex set. Returns ``(v, f, n_removed)``."""
-    dup = duplicate_faces(f)
+    dup = Connectivity(f, len(v)).duplicate_faces
     return v, f[~dup], int(dup.sum())
 
 
@@ -97,16 +86,15 @@ def remove_non_manifold_edges(v: np.ndarray, f: np.ndarray):
     """
     m0 = len(f)
     for round_ in range(3):
-        _, inverse, counts, a, b = edge_pairs(f)
-        bad = counts > 2
+        conn = Connectivity(f, len(v))
+        inverse = conn.half_edge_edge
+        bad = conn.edge_face_counts > 2
         if not bad.any():
             break
         on_bad = np.flatnonzero(bad[inverse])
         face_of, edge_of = on_bad // 3, inverse[on_bad]
         if round_ < 2:
-            m = len(f)
-            g = sp.coo_matrix((np.ones(len(a)), (a // 3, b // 3)), shape=(m, m))
-            _, patch = connected_components(g, directed=False)
+            patch = conn.face_components  # patches joined across two-face edges
             patch_area = np.bincount(patch, weights=_face_areas(v, f))
             order = np.lexsort((face_of, -patch_area[patch[face_of]], edge_of))
             e_sorted = edge_of[order]
@@ -129,7 +117,7 @@ def split_non_manifold_vertices(v: np.ndarray, f: np.ndarray):
     """
     if len(f) == 0:
         return v, f, 0
-    labels = corner_fan_labels(f)
+    labels = Connectivity(f, len(v)).corner_fan_labels
     base = max(int(f.max()), int(labels.max())) + 1
     keys, inv = np.unique(f.ravel() * base + labels, return_inverse=True)
     vertex = keys // base  # sorted by vertex, then fan label
@@ -172,15 +160,14 @@ def orient_consistently(f: np.ndarray):
     path, evaluated by pointer jumping in O(m log m) without a per-face loop.
     Returns ``(f, n_flipped)``; raises SurfaceError for a non-orientable surface.
     """
-    he, _, _, a, b = edge_pairs(f)
+    conn = Connectivity(f)
+    he, (a, b) = conn.half_edges, conn.interior_pairs
     inc = he[a, 0] == he[b, 0]
     if not inc.any():
         return f, 0
     m = len(f)
     fa, fb = a // 3, b // 3
-    _, comp = connected_components(
-        sp.coo_matrix((np.ones(len(fa)), (fa, fb)), shape=(m, m)), directed=False)
-    roots = np.unique(comp, return_index=True)[1]
+    roots = np.unique(conn.face_components, return_index=True)[1]
     # edge weight 1 = consistent, 2 = inconsistent; the virtual root m joins the components
     rows = np.concatenate([fa, fb, np.full(len(roots), m)])
     cols = np.concatenate([fb, fa, roots])
@@ -198,7 +185,7 @@ def orient_consistently(f: np.ndarray):
     flip = parity.astype(bool)
     f = f.copy()
     f[flip] = f[flip][:, ::-1]
-    left = inconsistent_edges(f)
+    left = Connectivity(f).n_inconsistent_edges
     if left:
         raise SurfaceError(f"surface is not orientable ({left} edges cannot be made consistent)")
     return f, int(flip.sum())
@@ -219,7 +206,7 @@ def fill_holes(v: np.ndarray, f: np.ndarray, max_hole_edges: int):
     New faces traverse the loop opposite to its faces, so a consistently oriented
     mesh stays consistent.  Returns ``(v, f, n_filled, n_left)``.
     """
-    loops = Surface(v, f).boundary_loops
+    loops = Connectivity(f, len(v)).boundary_loops
     patches = []
     n_new = 0
     n_left = 0
@@ -282,7 +269,7 @@ def _ring_patch(v: np.ndarray, loop: np.ndarray, first_new: int) -> tuple[int, n
     faces.append(np.stack([outer, np.roll(outer, -1), np.full(len(outer), nxt)], 1))
     faces = np.vstack(faces)
     # the patch must traverse the rim edge loop[0] -> loop[1] as loop[1] -> loop[0]
-    he = np.stack([faces, np.roll(faces, -1, axis=1)], axis=2).reshape(-1, 2)
+    he = Connectivity(faces).half_edges
     if not np.any((he[:, 0] == loop[1]) & (he[:, 1] == loop[0])):
         faces = faces[:, ::-1]
     return nxt + 1 - first_new, faces

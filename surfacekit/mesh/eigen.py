@@ -1,0 +1,233 @@
+"""The Laplace–Beltrami eigenbasis of a `Surface`: the k smallest eigenpairs of ``L φ = λ M φ``.
+
+`eigenbasis` caches its result on the surface under a key holding every
+parameter that changes it (k, Laplacian method, mass, solver); the one actual
+solve is :func:`solve_eigenbasis`, called exactly once per basis computed.
+"""
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from cholespy import CholeskySolverD, MatrixType
+from threadpoolctl import threadpool_limits
+
+from .laplacian import laplacian, laplacian_method
+from .surface import Surface, SurfaceError
+
+
+class EigenSolverWarning(UserWarning):
+    """The preferred eigen-solver failed and a fallback was used."""
+
+
+@dataclass(frozen=True)
+class Eigenbasis:
+    """The k smallest Laplace–Beltrami eigenpairs of a surface.
+
+    Attributes
+    ----------
+    values : (k,) ascending eigenvalues (1/mm²), the first ~0 on a closed surface
+    vectors : (n, k) M-orthonormal eigenfunctions (``vectors.T @ M @ vectors = I``)
+    mass : (n,) the lumped mass diagonal used (mm²)
+    solver : name of the solver that produced them
+    notes : plain-word warnings about how they were obtained (solver fallback...)
+    """
+
+    values: np.ndarray
+    vectors: np.ndarray
+    mass: np.ndarray
+    solver: str
+    notes: tuple[str, ...] = ()
+
+    @property
+    def k(self) -> int:
+        return int(self.values.shape[0])
+
+    def truncate(self, k: int) -> Eigenbasis:
+        if k > self.k:
+            raise ValueError(f"basis has {self.k} eigenpairs, {k} requested")
+        return Eigenbasis(self.values[:k], self.vectors[:, :k], self.mass, self.solver, self.notes)
+
+    def project(self, f: np.ndarray) -> np.ndarray:
+        """Spectral coefficients ``Φᵀ M f`` of per-vertex values, (k,) or (k, c)."""
+        return self.vectors.T @ (self.mass[:, None] * f if f.ndim > 1 else self.mass * f)
+
+
+def _apply_sign_rule(vectors: np.ndarray) -> np.ndarray:
+    """Deterministic signs: the entry of largest magnitude of each eigenvector is positive.
+
+    Ties (within 1e-8 relative) go to the lowest vertex index.  The rule follows
+    the geometry, so a vertex-permuted copy of a mesh gets matching signs.
+    """
+    mags = np.abs(vectors)
+    top = mags.max(axis=0, keepdims=True)
+    idx = np.argmax(mags >= top * (1 - 1e-8), axis=0)
+    signs = np.sign(vectors[idx, np.arange(vectors.shape[1])])
+    signs[signs == 0] = 1.0
+    return vectors * signs
+
+
+def eigen_shift(L: sp.spmatrix, M: sp.spmatrix) -> float:
+    """A small negative shift σ making ``L - σM`` positive definite.
+
+    Scaled by the mean of ``diag(L)/diag(M)`` so that it is tiny relative to the
+    spectrum whatever the units (mm or m).
+    """
+    scale = float(np.mean(L.diagonal() / np.maximum(M.diagonal(), 1e-300)))
+    return -1e-6 * max(scale, 1e-300)
+
+
+def _cholesky_solve(A: sp.spmatrix):
+    """A function solving ``A x = b`` for SPD A with a CHOLMOD factorisation (cholespy)."""
+    C = sp.coo_matrix(A)
+    chol = CholeskySolverD(
+        A.shape[0], C.row.astype(np.int32), C.col.astype(np.int32), C.data.astype(np.float64),
+        MatrixType.COO
+    )
+
+    def solve(b):
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        x = np.empty_like(b)
+        chol.solve(b, x)
+        return x
+
+    return solve
+
+
+def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
+                     ) -> tuple[np.ndarray, np.ndarray, str]:
+    """One eigen-solve: the k smallest ``(values (k,), vectors (n, k), solver used)`` of
+    ``L φ = λ M φ`` for a diagonal M, unsorted and unnormalised (see :func:`eigenbasis`)."""
+    n = L.shape[0]
+    if solver == "dense" or (solver == "auto" and n <= 1200):
+        # M is diagonal: the symmetric standard form M^-1/2 L M^-1/2 is cheaper than eigh(L, M)
+        d = 1.0 / np.sqrt(M.diagonal())
+        w, Y = scipy.linalg.eigh((L.multiply(np.outer(d, d))).toarray(), subset_by_index=[0, k - 1])
+        return w, Y * d[:, None], "dense"
+    if solver in ("auto", "cholmod", "arpack-lu"):
+        sigma = eigen_shift(L, M)
+        A = (L - sigma * M).tocsc()
+        if solver == "arpack-lu":
+            solve, name = spla.splu(A).solve, "arpack+superlu"
+        else:
+            solve, name = _cholesky_solve(A), "arpack+cholmod"
+        op = spla.LinearOperator((n, n), matvec=solve, matmat=solve, dtype=np.float64)
+        rng = np.random.default_rng(0)  # deterministic starting vector
+        v0 = rng.standard_normal(n)
+        try:
+            # ARPACK's Lanczos steps are level-2 BLAS on (n, ncv) blocks: threads only add
+            # synchronisation there. One BLAS thread was 3x faster at 40k vertices with
+            # another process busy on the second core (benchmarks/bench_eigenbasis.py).
+            with threadpool_limits(1):
+                w, V = _arpack(L, M, k, sigma, op, v0)
+            return w, V, name
+        except spla.ArpackNoConvergence:
+            warnings.warn("eigenbasis: ARPACK did not converge; falling back to LOBPCG",
+                          EigenSolverWarning, stacklevel=3)
+            solver = "lobpcg-fallback"
+    if solver in ("lobpcg", "lobpcg-fallback"):
+        return _lobpcg(L, M, k) + (solver,)
+    raise ValueError(f"unknown eigen-solver {solver!r}")
+
+
+def _arpack(L, M, k, sigma, op, v0):
+    """ARPACK in shift-invert mode with our factorisation as ``OPinv``.
+
+    tol stays at machine precision: a looser tol (1e-10) let ARPACK stop before the
+    last copy of a repeated eigenvalue appeared (test_operators.py).
+    """
+    return spla.eigsh(L, k=k, M=M, sigma=sigma, OPinv=op, v0=v0, which="LM")
+
+
+def _lobpcg(L, M, k: int):
+    """LOBPCG (Knyazev 2001) with an AMG preconditioner when the optional pyamg is installed."""
+    n = L.shape[0]
+    sigma = eigen_shift(L, M)
+    A = (L - sigma * M).tocsr()
+    try:
+        import pyamg
+
+        ml = pyamg.smoothed_aggregation_solver(A)
+        precond = ml.aspreconditioner()
+    except ImportError:
+        precond = sp.diags(1.0 / A.diagonal())
+    rng = np.random.default_rng(0)
+    X = rng.standard_normal((n, k + max(5, k // 5)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        w, V = spla.lobpcg(A, X, B=M, M=precond, tol=1e-9, maxiter=500, largest=False)
+    order = np.argsort(w)[:k]
+    return w[order] + sigma, V[:, order]
+
+
+def _relative_residual(L, mdiag: np.ndarray, w: np.ndarray, V: np.ndarray) -> float:
+    """max_i ||L φ_i - λ_i M φ_i|| / ||L|| (Frobenius-free estimate with the diagonal scale)."""
+    R = L @ V - (mdiag[:, None] * V) * w[None, :]
+    scale = np.abs(L.diagonal()).max() * np.sqrt(np.einsum("ij,ij->j", V, V)).max()
+    return float(np.linalg.norm(R, axis=0).max() / max(scale, 1e-300))
+
+
+def eigenbasis(s: Surface, k: int = 100, *, method: str = "auto", solver: str = "auto",
+               mass: str = "barycentric") -> Eigenbasis:
+    """The k smallest eigenpairs of ``L φ = λ M φ`` (Laplace–Beltrami), cached on `s`.
+
+    Parameters
+    ----------
+    s : Surface
+    k : int
+        Number of eigenpairs (clipped to n - 1).
+    method, mass :
+        Passed to :func:`laplacian`.
+    solver : {"auto", "cholmod", "arpack-lu", "dense", "lobpcg"}
+        ``"auto"``: dense for n <= 1200, else ARPACK in shift-invert mode with a
+        CHOLMOD sparse Cholesky factorisation of ``L - σM`` (cholespy; ``"arpack-lu"``
+        factorises with SuperLU instead).  If ARPACK fails to converge, LOBPCG is
+        used and an :class:`EigenSolverWarning` is issued.  The solver is part of
+        the cache key: each solver's basis is computed and kept separately.
+
+    Returns
+    -------
+    Eigenbasis
+        ``values`` (k,) ascending, clipped at 0 (1/mm²); ``vectors`` (n, k)
+        M-orthonormal with the sign rule of :func:`_apply_sign_rule`.
+    """
+    n = s.n_vertices
+    k = int(k)
+    if k < 1:
+        raise ValueError(f"k must be >= 1, got {k}")
+    k = min(k, n - 1)
+    method = laplacian_method(s, method)
+    # every parameter that changes the result is in the key; a larger basis of the
+    # same operator from the same solver serves a smaller k
+    setting = (method, mass, solver)
+    for key, basis in s.cache.items():
+        if key[:1] == ("eigenbasis",) and key[2:] == setting and basis.k >= k:
+            return basis if basis.k == k else basis.truncate(k)
+    L, M = laplacian(s, method=method, mass=mass)
+    w, V, used = solve_eigenbasis(L, M, k, solver)
+    order = np.argsort(w)
+    w, V = w[order], V[:, order]
+    if not np.all(np.isfinite(w)) or not np.all(np.isfinite(V)):
+        raise SurfaceError("eigen-solver produced non-finite values; check the mesh quality")
+    # M-normalise (ARPACK returns M-orthonormal vectors already; dense/LOBPCG too, up to round-off)
+    mdiag = M.diagonal()
+    V = V / np.sqrt(np.einsum("ij,i,ij->j", V, mdiag, V))[None, :]
+    V = _apply_sign_rule(V)
+    w = np.maximum(w, 0.0)
+    notes = []
+    if used == "lobpcg-fallback":
+        notes.append("ARPACK did not converge; eigenpairs come from the LOBPCG fallback")
+    residual = _relative_residual(L, mdiag, w, V)
+    if residual > 1e-6:
+        msg = f"eigenpairs inaccurate: largest relative residual {residual:.1e}"
+        warnings.warn(f"eigenbasis: {msg}", EigenSolverWarning, stacklevel=2)
+        notes.append(msg)
+    basis = Eigenbasis(values=w, vectors=V, mass=mdiag, solver=used, notes=tuple(notes))
+    for arr in (basis.values, basis.vectors, basis.mass):
+        arr.setflags(write=False)
+    s.cache[("eigenbasis", k) + setting] = basis
+    return basis
