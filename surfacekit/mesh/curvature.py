@@ -3,7 +3,7 @@
 Signs follow the outward normal given by the face winding (right-hand rule):
 a sphere of radius r has mean curvature ``+1/r`` and Gaussian curvature ``+1/r²``.
 Vertices on a mesh boundary get NaN (neither estimate is defined there).
-Public names are re-exported by :mod:`surfacekit.descriptors`.
+Public names are re-exported by :mod:`surfacekit.mesh.descriptors`.
 """
 from __future__ import annotations
 

@@ -1,7 +1,7 @@
 """Geodesic distances, farthest-point sampling and geodesic polar coordinates.
 
 Distances (heat method) and logarithmic maps (vector heat method) come from
-potpourri3d; patch descriptors for all vertices live in :mod:`surfacekit.patches`
+potpourri3d; patch descriptors for all vertices live in :mod:`surfacekit.mesh.patches`
 and are re-exported here.  Distances are in the units of the vertices (mm for
 medical data).  The heat
 method's factorisations are kept in a :class:`GeodesicSolver` cached on the

@@ -7,6 +7,8 @@ known ground-truth correspondence: points with the same sphere parameter.
 from __future__ import annotations
 
 import numpy as np
+from scipy.spatial import ConvexHull
+from scipy.spatial.transform import Rotation
 
 from .surface import Surface
 
@@ -25,8 +27,6 @@ def fibonacci_sphere(n: int, *, jitter: float = 0.0, seed: int = 0) -> Surface:
     ``jitter`` (in units of the mean spacing) perturbs the points tangentially, so
     two calls with different seeds give different, irregular triangulations.
     """
-    from scipy.spatial import ConvexHull
-
     i = np.arange(n) + 0.5
     z = 1.0 - 2.0 * i / n
     phi = np.pi * (1.0 + 5.0**0.5) * i
@@ -134,6 +134,4 @@ def organ_surface(kind: str = "kidney", n_vertices: int = 4000, *, seed: int = 0
 
 def random_rotation(seed: int = 0) -> np.ndarray:
     """A uniformly random 3x3 rotation matrix (deterministic for a seed)."""
-    from scipy.spatial.transform import Rotation
-
     return Rotation.random(random_state=seed).as_matrix()

@@ -1,10 +1,10 @@
 """Make any input mesh an analysis-ready surface: repair, smooth, resample, report.
 
-`prepare` chains the repair steps of `surfacekit.repair`, volume-preserving
-Taubin smoothing and resampling to a target vertex count, and returns the new
-surface with a `PrepareReport` (quality before and after, the actions taken in
-plain words).  `quality_report` / `QualityReport` live in `surfacekit.quality`
-and are re-exported here.
+`prepare` chains the repair steps of `surfacekit.preparation.repair`,
+volume-preserving Taubin smoothing and resampling to a target vertex count, and
+returns the new surface with a `PrepareReport` (quality before and after, the
+actions taken in plain words).  `quality_report` / `QualityReport` live in
+`surfacekit.preparation.mesh_quality` and are re-exported here.
 """
 from __future__ import annotations
 
@@ -14,11 +14,13 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
+from scipy.sparse.linalg import cg
 
 from . import repair
 from .mesh_quality import QualityReport, enclosed_centroid, quality_report
 from .remesh import improve_triangles, resample
 from .repair import umbrella_matrix
+from ..mesh.laplacian import cotangent_laplacian
 from ..mesh.surface import Surface, SurfaceError
 
 __all__ = [
@@ -96,10 +98,6 @@ def implicit_fairing(vertices: np.ndarray, faces: np.ndarray, scale_mm: float,
     -------
     (n, 3) faired vertices, mm
     """
-    from scipy.sparse.linalg import cg
-
-    from ..mesh.laplacian import cotangent_laplacian
-
     x = np.array(vertices, dtype=np.float64)
     f = np.asarray(faces)
     tau = float(scale_mm) ** 2 / max(int(steps), 1)
@@ -229,13 +227,13 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     non-manifold edges and split pinched vertices; keep the largest component;
     orient faces consistently (then outward); fill holes up to
     ``max_hole_edges`` with ring patches placed by a biharmonic fill
-    (:func:`surfacekit.repair.fill_holes`); smoothing: Taubin λ|μ
+    (:func:`surfacekit.preparation.repair.fill_holes`); smoothing: Taubin λ|μ
     (:func:`taubin_smooth`) against the one-voxel staircase, then one implicit
     mean-curvature fairing step (:func:`implicit_fairing`) at the largest voxel
     size, which flattens the wide terraces of thick slices that the Taubin filter
     cannot reach, then edge collapses/flips and tangential relaxation for
     well-shaped triangles; resampling to ``target_vertices``
-    (:func:`surfacekit.remesh.resample`), followed by the repair chain again;
+    (:func:`surfacekit.preparation.remesh.resample`), followed by the repair chain again;
     finally a uniform rescale about the enclosed centroid restores the enclosed
     volume of the repaired, unsmoothed input (:func:`restore_volume`), so
     smoothing and decimation do not bias organ volumes.

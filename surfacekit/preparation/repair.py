@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order, connected_components
+from scipy.sparse.linalg import spsolve
 
 from .mesh_quality import coincident_vertex_map, degenerate_faces
 from ..mesh.connectivity import Connectivity
@@ -230,8 +231,6 @@ def fill_holes(v: np.ndarray, f: np.ndarray, max_hole_edges: int):
         lap = sp.identity(len(v), format="csr") - umbrella_matrix(f, len(v))
         k2 = (lap.T @ lap).tocsr()
         new, known = np.arange(n_old, len(v)), np.arange(n_old)
-        from scipy.sparse.linalg import spsolve
-
         rhs = -(k2[new][:, known] @ v[known])
         v[new] = np.asarray(spsolve(k2[new][:, new].tocsc(), rhs)).reshape(n_new, 3)
     return v, f, len(patches), n_left
