@@ -1,7 +1,9 @@
 """Change maps between a baseline and a follow-up (surfacekit.analysis.change).
 
 Synthetic, invented shapes (surfacekit.mesh.synthetic); the ground-truth correspondence
-is the nearest sphere parameter (both meshes triangulate the same parametric shape).
+is the nearest sphere parameter (both meshes triangulate the same parametric shape),
+with the rigid pose that ``sk.match`` would fit for it
+(surfacekit.correspondence.pose.rigid_pose).
 """
 import csv
 
@@ -10,14 +12,16 @@ import pytest
 from scipy.spatial import cKDTree
 
 import surfacekit as sk
+from surfacekit.correspondence.pose import rigid_pose
 
 BUMP_CENTRE = np.array([-0.3, -0.7, 0.5]) / np.linalg.norm([-0.3, -0.7, 0.5])
 
 
-def _truth(sp_source, sp_target):
+def _truth(source, target, sp_source, sp_target):
     s2t = cKDTree(sp_target).query(sp_source)[1]
     t2s = cKDTree(sp_source).query(sp_target)[1]
-    return sk.Correspondence(s2t, t2s)
+    pose, _ = rigid_pose(source, target, s2t, np.ones(source.n_vertices))
+    return sk.Correspondence(s2t, t2s, rigid=pose)
 
 
 def _bump_weight(sphere_points, width=0.2):
@@ -49,7 +53,7 @@ def _check_bulge(rep, sp_b):
 
 def test_bulge_with_ground_truth_map():
     base, sp_b, fol, sp_f = _bulge_pair()
-    rep = sk.measure_change(base, fol, _truth(sp_b, sp_f))
+    rep = sk.measure_change(base, fol, _truth(base, fol, sp_b, sp_f))
     _check_bulge(rep, sp_b)
     # the removed rigid motion is the inverse of the applied one (exact construction)
     R = sk.synthetic.random_rotation(3)
@@ -65,7 +69,7 @@ def test_rigid_copy_shows_no_change():
     fol, sp_f = sk.synthetic.organ_surface("kidney", 2500, seed=3)
     R = sk.synthetic.random_rotation(4)
     fol = fol.copy_with(vertices=fol.vertices @ R.T - 30.0)
-    rep = sk.measure_change(base, fol, _truth(sp_b, sp_f))
+    rep = sk.measure_change(base, fol, _truth(base, fol, sp_b, sp_f))
     # Definition: a rigid motion is no change; remeshing only leaves chord-vs-arc error
     # of order h²κ (h edge length ~3 mm, κ ~ 1/30 mm) = a few tenths of a mm at most.
     assert np.abs(rep.normal_displacement).mean() < 0.1
@@ -80,7 +84,7 @@ def test_uniform_scaling_of_a_sphere_is_analytic():
     fol, sp_f = sk.synthetic.organ_surface("sphere", 2000, seed=0)
     s = 1.1
     fol = fol.copy_with(vertices=fol.vertices * s)
-    rep = sk.measure_change(base, fol, _truth(sp_b, sp_f))
+    rep = sk.measure_change(base, fol, _truth(base, fol, sp_b, sp_f))
     # the robust pose cannot absorb a uniform scaling (rigid only), centre stays put; the
     # closest-point pose rounds may spin the sphere (rotation symmetric), so a vertex can
     # land inside a face: chord sagitta ~ edge²/(6R) = (2.6 mm)²/(6·33 mm) ≈ 0.04 mm.
@@ -95,21 +99,25 @@ def test_uniform_scaling_of_a_sphere_is_analytic():
 def test_regional_table_csv_npz_and_fields(tmp_path):
     base, sp_b, fol, sp_f = _bulge_pair(1500, 1800)
     labels = (sp_b @ BUMP_CENTRE > 0.95).astype(int)  # region 1 holds the bulge
-    rep = sk.measure_change(base, fol, _truth(sp_b, sp_f), labels=labels,
+    rep = sk.measure_change(base, fol, _truth(base, fol, sp_b, sp_f), labels=labels,
                             names={0: "rest", 1: "bulge"})
     rows = rep.regional_table()
     assert [r["name"] for r in rows] == ["rest", "bulge"]
     assert rows[1]["mean_normal_displacement_mm"] > 1.0 > abs(rows[0]["mean_normal_displacement_mm"])
     assert rows[1]["p95_normal_displacement_mm"] >= rows[1]["median_normal_displacement_mm"]
-    assert rows[1]["area_change_percent"] > 0
+    assert rows[1]["mapped_area_change_percent"] > 0
     assert rows[0]["n_vertices"] + rows[1]["n_vertices"] == base.n_vertices
-    p1 = rep.to_csv(tmp_path / "regions.csv")
+    p1 = rep.to_csv(tmp_path / "change.csv")
     p2 = rep.to_csv(tmp_path / "again.csv")
     assert p1.read_bytes() == p2.read_bytes()  # byte-stable for a cohort diff
     with open(p1, newline="") as fh:
         parsed = list(csv.DictReader(fh))
     assert parsed[1]["name"] == "bulge"
-    assert float(parsed[1]["area_mm2"]) == pytest.approx(rows[1]["area_mm2"], rel=1e-6)
+    assert float(parsed[1]["area_mm2"]) == pytest.approx(rows[1]["area_mm2"], rel=1e-5)
+    # one definition per metric: the table's whole-surface row is the summary's metrics
+    whole = rep.regional_table(labels=np.zeros(base.n_vertices, int))[0]
+    summary = rep.summary()
+    assert all(summary[k] == whole[k] for k in whole if k not in ("label", "name", "area_mm2"))
     rep.save(tmp_path / "change.npz")
     back = sk.ChangeReport.load(tmp_path / "change.npz")
     np.testing.assert_array_equal(back.normal_displacement, rep.normal_displacement)
@@ -130,13 +138,18 @@ def test_regional_table_csv_npz_and_fields(tmp_path):
 
 def test_bad_input():
     base, _ = sk.synthetic.organ_surface("sphere", 300, seed=0)
-    ident = sk.Correspondence(np.arange(300), np.arange(300))
+    ident = sk.Correspondence(np.arange(300), np.arange(300),
+                              rigid=sk.analysis.Transform(np.eye(3), np.zeros(3)))
     with pytest.raises(ValueError, match="labels"):
         sk.measure_change(base, base, ident, labels=np.zeros(5, int))
     with pytest.raises(ValueError, match="correspondence"):
         sk.measure_change(base, base, sk.Correspondence(np.arange(10), np.zeros(300, int)))
     with pytest.raises(ValueError, match="Surface"):
         sk.measure_change(base.vertices, base, ident)
+    with pytest.raises(ValueError, match="needs the correspondence"):
+        sk.measure_change(base, base, None)
+    with pytest.raises(ValueError, match="no rigid pose"):
+        sk.measure_change(base, base, sk.Correspondence(np.arange(300), np.arange(300)))
 
 
 @pytest.mark.slow
@@ -150,7 +163,7 @@ def test_bulge_end_to_end_with_match():
 
     R = Rotation.from_rotvec(np.deg2rad(30.0) * np.array([1, 2, 3]) / np.sqrt(14)).as_matrix()
     base, sp_b, fol, _ = _bulge_pair(2000, 2600, rotation=R)
-    rep = sk.measure_change(base, fol, options=sk.MatchOptions(same_orientation=True))
+    rep = sk.compare(base, fol, options=sk.MatchOptions(same_orientation=True)).change
     _check_bulge(rep, sp_b)
     # measured here: ~1.2 degrees of tangential pose error left by the map (normal
     # residuals constrain tilt, not sliding); allow 2.3 degrees
@@ -161,7 +174,7 @@ def test_closest_point_projection_matches_trimesh():
     # Reference: trimesh.proximity.closest_point (exact point-triangle distance, trimesh).
     import trimesh
 
-    from surfacekit.analysis import geometry as geo
+    from surfacekit.mesh import proximity as geo
 
     s, _ = sk.synthetic.organ_surface("kidney", 400, seed=2)
     rng = np.random.default_rng(0)
@@ -174,3 +187,37 @@ def test_closest_point_projection_matches_trimesh():
     # the neighbourhood search is the same with candidates from the seed's rings
     near = geo.near_faces(s, seeds, rings=1)
     assert np.all(np.diff(near[0]) >= 0) and len(near[0]) == 60 * len(np.unique(near[1]))
+
+
+def test_change_starts_from_the_correspondence_pose_and_fits_nothing(monkeypatch):
+    """measure_change takes the rigid pose the correspondence carries: no pose is fitted
+    (the alignment functions and every SVD, the core of Kabsch's and Umeyama's fits,
+    are made to fail), and another pose in the correspondence moves the result by
+    exactly that pose."""
+    from surfacekit.correspondence import alignment, pose
+    from surfacekit.correspondence.alignment import Transform
+
+    base, sp_b, fol, sp_f = _bulge_pair(1200, 1500)
+    corr = _truth(base, fol, sp_b, sp_f)
+    ref = sk.measure_change(base, fol, corr)
+
+    def no_fit(*args, **kwargs):
+        raise AssertionError("measure_change fitted a pose")
+
+    for module, name in ((alignment, "weighted_umeyama"), (alignment, "rigid_transform"),
+                         (alignment, "similarity_transform"), (pose, "rigid_pose"),
+                         (np.linalg, "svd")):
+        monkeypatch.setattr(module, name, no_fit)
+    rep = sk.measure_change(base, fol, corr)
+    np.testing.assert_array_equal(rep.normal_displacement, ref.normal_displacement)
+    np.testing.assert_allclose(rep.rigid, corr.rigid.inverse().matrix, atol=1e-12)
+    assert rep.info["alignment_rms_mm"] == corr.rigid.rms
+    # the same map with the pose moved 2 mm along x: the follow-up lands 2 mm further,
+    # so every displacement changes by the inverse rotation of that shift (translation
+    # commutes with the heat smoothing, which keeps constants, and with the projection)
+    moved = Transform(corr.rigid.rotation, corr.rigid.translation + [2.0, 0.0, 0.0])
+    shifted = sk.Correspondence(corr.source_to_target, corr.target_to_source, rigid=moved)
+    rep2 = sk.measure_change(base, fol, shifted)
+    np.testing.assert_allclose(rep2.displacement - ref.displacement,
+                               np.broadcast_to(-corr.rigid.rotation.T @ [2.0, 0.0, 0.0],
+                                               ref.displacement.shape), atol=1e-6)

@@ -84,7 +84,7 @@ def test_full_demo_from_an_empty_folder(tmp_path):
     assert (out / "report.html").stat().st_size > 1_000_000  # plotly.js is inline
     assert len(list((out / "figures").glob("*.png"))) >= 4
     for name in ("results/followup_from_segmentation.ply", "results/baseline_change.ply",
-                 "results/map.npz", "results/change.csv", "results/regions.csv",
+                 "results/map.npz", "results/change.csv",
                  "results/cohort/group_test.csv", "data/demo_cohort.csv"):
         assert (out / name).is_file(), name
     assert "Traceback" not in run.stderr and "\r" not in run.stderr  # no bars off a terminal
@@ -92,7 +92,7 @@ def test_full_demo_from_an_empty_folder(tmp_path):
     true_dv = summary["true volume change (ml, built into the scenario)"]
     assert abs(summary["measured volume change (ml)"] - true_dv) < 0.3 * true_dv
     assert summary["map error vs ground truth, mean (geodesic / sqrt(area))"] < 0.05
-    with open(out / "results" / "regions.csv", newline="") as fh:
+    with open(out / "results" / "change.csv", newline="") as fh:
         regions = {r["name"]: r for r in csv.DictReader(fh)}
     p95 = next(k for k in next(iter(regions.values())) if "p95" in k and "normal" in k)
     grown = max(regions, key=lambda n: float(regions[n][p95]))

@@ -12,7 +12,7 @@ import pytest
 
 import surfacekit as sk
 from surfacekit.app import figures as report_figures
-from surfacekit.app import report
+from surfacekit.app import panels
 from surfacekit.app.report import ReportLayer, ReportPanel, write_report
 from surfacekit.app.views import colour_fields, map_distortion
 
@@ -48,7 +48,7 @@ def test_report_is_self_contained_and_escaped(tmp_path, kidney):
     assert specs[0]["figure"]["data"][0]["name"].startswith("&lt;script&gt;")
     # no external resources: nothing is loaded from a network
     assert not re.search(r"""<(script|link|img)[^>]+(src|href)=['"]?(https?:)?//""", html)
-    assert "Research use only" in html
+    assert sk.io.RESEARCH_NOTE in html  # the package's one research-use caution
 
 
 def test_diverging_scale_is_centred_on_zero_and_layers_switch(tmp_path, kidney):
@@ -67,7 +67,7 @@ def test_diverging_scale_is_centred_on_zero_and_layers_switch(tmp_path, kidney):
     assert change["cmin"][0] == -change["cmax"][0] > -1e9
     assert change["cmax"][0] >= np.percentile(np.abs(nd), 99) - 1e-9
     assert change["showscale"] == [True, False]  # one colour bar
-    assert change["colorscale"][1] == report.NEUTRAL  # field not defined on the second surface
+    assert change["colorscale"][1] == panels.NEUTRAL  # field not defined on the second surface
     assert spec["layers"][1]["update"]["cmin"] == [0.0, 0.0]
     regions = spec["layers"][2]["update"]
     assert regions["colorbar.ticktext"][0] == ["left", "right"]
@@ -109,11 +109,25 @@ def test_png_figures_written_and_embedded(tmp_path, kidney):
 
 
 def test_map_distortion_definition(kidney):
-    """Identity map: 0 everywhere; map onto a copy scaled by 2: log2(2) = 1 everywhere (definition)."""
+    """Area distortion of the map (both surfaces at unit area), per vertex in log2.
+
+    Identity map and a map onto a scaled copy: 0 everywhere (definition).  A copy
+    stretched by s along x: a face with unit normal n grows by
+    sqrt(n_x² + s²(1 - n_x²)) (Nanson's relation, the cofactor of diag(s, 1, 1)),
+    divided by the total area ratio after scaling to unit area.
+    """
     ident = np.arange(kidney.n_vertices)
     np.testing.assert_allclose(map_distortion(kidney, kidney, ident), 0.0, atol=1e-12)
     big = kidney.copy_with(vertices=kidney.vertices * 2.0)
-    np.testing.assert_allclose(map_distortion(kidney, big, ident), 1.0, atol=1e-12)
+    np.testing.assert_allclose(map_distortion(kidney, big, ident), 0.0, atol=1e-12)
+    s = 1.5
+    stretched = kidney.copy_with(vertices=kidney.vertices * [s, 1.0, 1.0])
+    nx = kidney.face_normals[:, 0]
+    face = np.log2(np.sqrt(nx**2 + s**2 * (1 - nx**2)) * kidney.area / stretched.area)
+    w = kidney.face_areas
+    expected = sum(np.bincount(kidney.faces[:, c], w * face, kidney.n_vertices) for c in range(3)) / \
+        sum(np.bincount(kidney.faces[:, c], w, kidney.n_vertices) for c in range(3))
+    np.testing.assert_allclose(map_distortion(kidney, stretched, ident), expected, atol=1e-9)
 
 
 def test_colour_fields_do_not_depend_on_pose(kidney):

@@ -2,9 +2,10 @@
 
 For research use only; not for diagnosis or treatment decisions.
 """
-from .alignment import Transform, rigid_transform, similarity_transform, weighted_umeyama
+from ..correspondence.alignment import Transform, rigid_transform, similarity_transform, weighted_umeyama
 from .change import ChangeReport, measure_change
 from .labels import transfer_labels
+from .metrics import change_metrics
 from .shape_model import (
     ProcrustesResult,
     ShapeModel,
@@ -12,15 +13,18 @@ from .shape_model import (
     shape_model,
     spectral_distances,
 )
-from .stats import GroupTestResult, benjamini_hochberg, vertexwise_group_test
+from .stats import GroupTestResult, vertexwise_group_test
+from .workflow import Comparison, compare
 
 __all__ = [
     "ChangeReport",
+    "Comparison",
     "GroupTestResult",
     "ProcrustesResult",
     "ShapeModel",
     "Transform",
-    "benjamini_hochberg",
+    "change_metrics",
+    "compare",
     "generalized_procrustes",
     "measure_change",
     "rigid_transform",

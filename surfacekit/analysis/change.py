@@ -10,10 +10,13 @@ from pathlib import Path
 
 import numpy as np
 
+from ..correspondence.result import Correspondence
+from ..io.tables import RESEARCH_NOTE, json_default, write_csv
+from ..mesh.laplacian import face_to_vertex_mean
+from ..mesh.proximity import near_faces, outward_vertex_normals, project_pairs
 from ..mesh.surface import Surface, SurfaceError
 from . import geometry as geo
-from .alignment import Transform, rigid_transform
-from .regions import RESEARCH_NOTE, regional_rows, write_csv
+from .metrics import REGION_COLUMNS, change_metrics, regional_rows
 
 
 @dataclass
@@ -69,12 +72,19 @@ class ChangeReport:
     def area_change_percent(self) -> float:
         return 100.0 * (self.followup_area_mm2 / self.baseline_area_mm2 - 1.0)
 
+    def metrics(self, mask: np.ndarray | None = None) -> dict:
+        """Area-weighted change metrics over all vertices or a region (:func:`change_metrics`)."""
+        return change_metrics(self, mask)
+
     def summary(self) -> dict:
-        """Global change and field statistics as a JSON-able dict (with a research-use note)."""
-        nd = self.normal_displacement
-        w = self.vertex_areas / self.vertex_areas.sum()
+        """Global change and the change metrics as a JSON-able dict (with a research-use note).
+
+        The field statistics are those of :meth:`metrics` (area-weighted with the
+        baseline vertex areas), under the same names as in the regional table and
+        the cohort tables.
+        """
+        field_stats = {k: v for k, v in self.metrics().items() if k != "area_mm2"}
         return {
-            "n_vertices": int(nd.shape[0]),
             "baseline_volume_ml": self.baseline_volume_mm3 / 1000.0,
             "followup_volume_ml": self.followup_volume_mm3 / 1000.0,
             "volume_change_ml": self.volume_change_ml,
@@ -83,12 +93,7 @@ class ChangeReport:
             "followup_area_mm2": self.followup_area_mm2,
             "area_change_mm2": self.area_change_mm2,
             "area_change_percent": self.area_change_percent,
-            "mean_normal_displacement_mm": float(w @ nd),
-            "mean_abs_normal_displacement_mm": float(w @ np.abs(nd)),
-            "max_normal_displacement_mm": float(nd.max()),
-            "min_normal_displacement_mm": float(nd.min()),
-            "p95_abs_normal_displacement_mm": float(np.percentile(np.abs(nd), 95)),
-            "mapped_area_change_percent": float(100.0 * (w @ np.exp(self.log_area_ratio) - 1.0)),
+            **field_stats,
             "alignment_rms_mm": float(self.info.get("alignment_rms_mm", float("nan"))),
             "note": RESEARCH_NOTE,
         }
@@ -96,23 +101,21 @@ class ChangeReport:
     # ------------------------------------------------------------ regions
     def regional_table(self, labels: np.ndarray | None = None,
                        names: dict | None = None) -> list[dict]:
-        """Per-region statistics: one dict per label (sorted), or one row "all" without labels.
+        """Per-region change metrics: one dict per label (sorted), or one row "all" without labels.
 
-        Columns: label, name, n_vertices, area_mm2, mean / median / p5 / p95 of the
-        normal displacement (mm, area-weighted mean), mean absolute normal
-        displacement (mm), area change (%) from the mapped areas, and mean confidence.
+        Columns: ``label``, ``name`` and the area-weighted metrics of :meth:`metrics`
+        (:data:`surfacekit.analysis.metrics.REGION_COLUMNS`).
         """
         labels = self.labels if labels is None else np.asarray(labels)
         names = self.region_names if names is None else names
         if labels is not None and np.shape(labels) != (self.normal_displacement.shape[0],):
             raise ValueError(f"labels must have shape ({self.normal_displacement.shape[0]},), "
                              f"got {np.shape(labels)}")
-        return regional_rows(self.normal_displacement, self.log_area_ratio, self.vertex_areas,
-                             self.confidence, labels, names)
+        return regional_rows(self, labels, names)
 
     def to_csv(self, path, labels: np.ndarray | None = None, names: dict | None = None) -> Path:
-        """Write :meth:`regional_table` as a plain CSV (atomic, byte-stable for equal input)."""
-        return write_csv(path, self.regional_table(labels, names))
+        """Write :meth:`regional_table` as CSV (atomic, 6 significant digits, byte-stable)."""
+        return write_csv(path, self.regional_table(labels, names), columns=REGION_COLUMNS)
 
     # ------------------------------------------------------------ fields and files
     def fields(self) -> dict:
@@ -143,7 +146,7 @@ class ChangeReport:
                   "normal_displacement": self.normal_displacement,
                   "log_area_ratio": self.log_area_ratio, "confidence": self.confidence,
                   "vertex_areas": self.vertex_areas, "rigid": self.rigid,
-                  "meta": np.array(json.dumps(meta, sort_keys=True, default=float))}
+                  "meta": np.array(json.dumps(meta, sort_keys=True, default=json_default))}
         if self.labels is not None:
             arrays["labels"] = self.labels
         return save_fields(path, **arrays)
@@ -184,79 +187,73 @@ def _mapped_points(baseline: Surface, moved: np.ndarray, faces: np.ndarray, s2t:
     """(n, 3) sub-vertex mapped points of the baseline vertices on the aligned follow-up."""
     raw = moved[s2t] - baseline.vertices
     smooth = geo.heat_smooth(baseline, raw, sigma)
-    return geo.project_pairs(baseline.vertices + smooth, moved, faces, pairs)
+    return project_pairs(baseline.vertices + smooth, moved, faces, pairs)
 
 
-def _refine_pose(baseline: Surface, followup: Surface, pairs, conf: np.ndarray,
-                 pose: Transform, max_rounds: int = 10, tol_mm: float = 1e-3):
-    """Refine the rigid pose by robust point-to-surface rounds along the baseline normals.
-
-    A vertex-level map is off by up to an edge (and by smooth tangential drift
-    near changing regions), which tilts a pose fitted to matched vertices.  Each
-    round finds, for every baseline vertex, its closest point on the follow-up
-    faces near its matched vertex, keeps only the offset along the baseline
-    normal (a point-to-plane step in the spirit of Chen & Medioni, Image Vision
-    Comput. 1992, with the search limited by the correspondence), and refits the
-    Tukey-weighted Kabsch pose, so a changing region still gets weight ~0.
-    Tangential offsets are not used: on near-symmetric shapes (a growing sphere)
-    closest points would let the pose slide; the tangential pose comes from the map.
-    Returns (pose, moved follow-up vertices, rounds used).
-    """
-    moved = pose.apply(followup.vertices)
-    normals = geo.outward_vertex_normals(baseline)
-    rounds = 0
-    for rounds in range(1, max_rounds + 1):
-        foot = geo.project_pairs(baseline.vertices, moved, followup.faces, pairs)
-        h = np.einsum("ij,ij->i", foot - baseline.vertices, normals)
-        target = baseline.vertices + h[:, None] * normals
-        step = rigid_transform(target, baseline.vertices, weights=conf)
-        new_pose = Transform(step.rotation @ pose.rotation,
-                             step.rotation @ pose.translation + step.translation,
-                             1.0, step.weights, step.rms, step.n_iter)
-        moved = new_pose.apply(followup.vertices)
-        shift = np.abs(step.apply(baseline.vertices) - baseline.vertices).max()
-        pose = new_pose
-        if shift < tol_mm:
-            break
-    return pose, moved, rounds
+def _check_correspondence(baseline: Surface, followup: Surface, corr) -> np.ndarray:
+    """The baseline -> follow-up vertex map of `corr`, after checking it fits both surfaces."""
+    if not isinstance(corr, Correspondence):
+        raise SurfaceError("measure_change needs the correspondence baseline -> follow-up "
+                           "(sk.match(baseline, followup), or sk.compare which matches once)")
+    n = baseline.n_vertices
+    s2t = corr.source_to_target
+    if s2t.shape != (n,):
+        raise SurfaceError(f"correspondence maps {s2t.shape[0]} source vertices, baseline has {n}")
+    if corr.n_target != followup.n_vertices or s2t.max() >= followup.n_vertices:
+        raise SurfaceError(f"correspondence has {corr.n_target} target vertices, follow-up has "
+                           f"{followup.n_vertices}")
+    if getattr(corr, "rigid", None) is None:
+        raise SurfaceError("correspondence carries no rigid pose (corr.rigid); use one made by "
+                           "sk.match, which fits the pose once")
+    return s2t
 
 
-def measure_change(baseline: Surface, followup: Surface, corr=None, *,
-                   labels: np.ndarray | None = None, names: dict | None = None, seed: int = 0,
-                   options=None, smoothing: float | None = None,
-                   rings: int = 2) -> ChangeReport:
-    """Where and how much a surface changed between two scans.
+def _log_area_ratio(baseline: Surface, mapped: np.ndarray, sigma: float) -> tuple[np.ndarray, int]:
+    """Smoothed per-vertex log area ratio of the map, and the number of folded faces."""
+    f = baseline.faces
+    cross = np.cross(mapped[f[:, 1]] - mapped[f[:, 0]], mapped[f[:, 2]] - mapped[f[:, 0]])
+    mapped_area = 0.5 * np.einsum("ij,ij->i", cross, baseline.face_normals)  # signed: flips < 0
+    area = baseline.face_areas
+    floor = 1e-3 * area  # folded or collapsed mapped faces count as a 1000-fold shrink
+    ratio = np.divide(np.maximum(mapped_area, floor), area, out=np.ones_like(area),
+                      where=area > 0)
+    n_flipped = int(np.sum((mapped_area <= floor) & (area > 0)))
+    return geo.heat_smooth(baseline, face_to_vertex_mean(baseline, np.log(ratio)), sigma), n_flipped
 
-    Steps (the choices documented here are this library's):
 
-    1. Correspondence ``baseline -> follow-up`` (`corr`, or ``sk.match(baseline,
-       followup, options, seed=seed)``).
-    2. Rigid motion removed by a confidence-weighted, Tukey-reweighted Kabsch fit
-       of the matched vertex pairs (Kabsch 1976; see :func:`rigid_transform`), so a
-       growing region does not bias the pose, then refined by point-to-surface
-       rounds along the baseline normals, limited to the map's neighbourhoods.
-    3. Sub-vertex mapped points: the vertex-level displacement field (matched
+def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *,
+                   labels: np.ndarray | None = None, names: dict | None = None,
+                   smoothing: float | None = None, rings: int = 2) -> ChangeReport:
+    """Where and how much a surface changed between two scans, from their correspondence.
+
+    Nothing is matched or fitted again here: the map and the rigid pose are those
+    `corr` carries (``sk.match`` fits the pose once, robust to a changing region;
+    ``sk.compare`` runs the match for you).  Steps (the choices documented here
+    are this library's):
+
+    1. The follow-up is brought into the baseline frame by the inverse of the
+       correspondence's rigid pose, ``corr.rigid.inverse()`` (the follow-up is the
+       correspondence target).
+    2. Sub-vertex mapped points: the vertex-level displacement field (matched
        follow-up vertex minus baseline vertex) is smoothed by implicit heat
        diffusion over ``smoothing`` mm (default: twice the baseline mean edge
        length) to remove the resolution staircase, and each displaced baseline vertex is
        projected onto the closest point of the follow-up triangles touching the
        `rings`-ring of its matched vertex (Ericson 2005, §5.1.5).  This keeps the
        tangential part of the correspondence and makes the normal part exact.
-    4. ``normal_displacement = displacement · n`` with n the outward area-weighted
+    3. ``normal_displacement = displacement · n`` with n the outward area-weighted
        baseline vertex normal.
-    5. ``log_area_ratio``: per baseline face, log(area of the mapped triangle /
+    4. ``log_area_ratio``: per baseline face, log(area of the mapped triangle /
        face area) (the Jacobian of the piecewise-linear map), area-averaged to
-       vertices and smoothed over the same length as in step 3.
+       vertices and smoothed over the same length as in step 2.
 
     Parameters
     ----------
     baseline, followup : Surface (mm), any meshing and pose
-    corr : Correspondence with ``source_to_target`` of shape (baseline.n_vertices,)
+    corr : Correspondence baseline -> follow-up with its rigid pose (``corr.rigid``)
     labels : (n,) int region labels on the baseline, optional; names : {label: name}
-    seed, options : for `sk.match` (``sk.MatchOptions``; e.g. ``same_orientation=True``
-        for two scans taken in the same scanner orientation)
-    smoothing : length (mm) of the smoothing of step 3 and 5; 0 disables it
-    rings : size of the follow-up neighbourhood searched in step 3
+    smoothing : length (mm) of the smoothing of steps 2 and 4; 0 disables it
+    rings : size of the follow-up neighbourhood searched in step 2
 
     Returns
     -------
@@ -266,53 +263,28 @@ def measure_change(baseline: Surface, followup: Surface, corr=None, *,
         raise SurfaceError("baseline and followup must be Surface objects")
     n = baseline.n_vertices
     lab = _check_labels(labels, n)
-    if corr is None:
-        from ..correspondence import match
+    s2t = _check_correspondence(baseline, followup, corr)
+    conf = np.ones(n) if corr.source_confidence is None else corr.source_confidence
 
-        corr = match(baseline, followup, options, seed=seed)
-    s2t = np.asarray(corr.source_to_target, dtype=np.int64)
-    if s2t.shape != (n,):
-        raise SurfaceError(f"correspondence maps {s2t.shape[0]} source vertices, baseline has {n}")
-    if s2t.min() < 0 or s2t.max() >= followup.n_vertices:
-        raise SurfaceError("correspondence refers to follow-up vertices out of range")
-    conf = getattr(corr, "source_confidence", None)
-    conf = np.ones(n) if conf is None else np.clip(np.asarray(conf, dtype=np.float64), 0, 1)
-    if conf.shape != (n,):
-        raise SurfaceError(f"source_confidence has shape {conf.shape}, expected ({n},)")
-
-    # 2. rigid motion follow-up -> baseline frame, robust to the changing region
-    pose = rigid_transform(followup.vertices[s2t], baseline.vertices, weights=conf)
+    pose = corr.rigid.inverse()  # 1. follow-up -> baseline frame
+    moved = pose.apply(followup.vertices)
     sigma = 2.0 * baseline.mean_edge_length if smoothing is None else float(smoothing)
-    pairs = geo.near_faces(followup, s2t, rings)  # the search neighbourhoods, fixed
-    pose, moved, n_refine = _refine_pose(baseline, followup, pairs, conf, pose)
-
-    # 3. sub-vertex mapped points
-    mapped = _mapped_points(baseline, moved, followup.faces, s2t, pairs, sigma)
+    pairs = near_faces(followup, s2t, rings)
+    mapped = _mapped_points(baseline, moved, followup.faces, s2t, pairs, sigma)  # 2.
     displacement = mapped - baseline.vertices
-
-    # 4. along the outward normal
-    normals = geo.outward_vertex_normals(baseline)
+    normals = outward_vertex_normals(baseline)  # 3.
     normal_displacement = np.einsum("ij,ij->i", displacement, normals)
+    log_area_ratio, n_flipped = _log_area_ratio(baseline, mapped, sigma)  # 4.
 
-    # 5. per-face Jacobian of the map
-    f = baseline.faces
-    cross = np.cross(mapped[f[:, 1]] - mapped[f[:, 0]], mapped[f[:, 2]] - mapped[f[:, 0]])
-    mapped_area = 0.5 * np.einsum("ij,ij->i", cross, baseline.face_normals)  # signed: flips < 0
-    area = baseline.face_areas
-    floor = 1e-3 * area  # folded or collapsed mapped faces count as a 1000-fold shrink
-    ratio = np.divide(np.maximum(mapped_area, floor), area, out=np.ones_like(area),
-                      where=area > 0)
-    n_flipped = int(np.sum((mapped_area <= floor) & (area > 0)))
-    log_area_ratio = geo.heat_smooth(baseline, geo.face_to_vertex(baseline, np.log(ratio)), sigma)
-
-    confidence = conf
-    info = {"alignment_rms_mm": pose.rms, "pose_refinements": n_refine,
-            "smoothing_mm": sigma, "projection_rings": rings, "flipped_faces": n_flipped,
-            "robust_inlier_fraction": float(np.mean(pose.weights > 0)),
-            "correspondence_route": str(dict(getattr(corr, "info", {}) or {}).get("route", "given"))}
+    weights = getattr(corr.rigid, "weights", None)
+    info = {"alignment_rms_mm": float(corr.rigid.rms), "smoothing_mm": sigma,
+            "projection_rings": rings, "flipped_faces": n_flipped,
+            "robust_inlier_fraction": (float(np.mean(np.asarray(weights) > 0))
+                                       if weights is not None else None),
+            "correspondence_route": str(corr.info.get("route", "given"))}
     return ChangeReport(
         displacement=displacement, normal_displacement=normal_displacement,
-        log_area_ratio=log_area_ratio, confidence=confidence,
+        log_area_ratio=log_area_ratio, confidence=conf,
         vertex_areas=np.asarray(baseline.vertex_areas, dtype=np.float64), rigid=pose.matrix,
         baseline_volume_mm3=float(baseline.volume), followup_volume_mm3=float(followup.volume),
         baseline_area_mm2=float(baseline.area), followup_area_mm2=float(followup.area),

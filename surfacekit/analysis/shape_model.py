@@ -10,7 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .alignment import Transform, weighted_umeyama
+from ..correspondence.alignment import Transform, weighted_umeyama
 
 
 def _check_shapes(shapes, min_subjects: int = 2) -> np.ndarray:

@@ -5,8 +5,9 @@ import csv
 import sys
 from pathlib import Path
 
-from .cli import EXIT_SOME_FAILED, Context, InputError
+from .cli_util import DEMO_DATA as D
 from .cli_util import existing
+from .context import EXIT_SOME_FAILED, Command, Context, InputError
 
 
 # ---------------------------------------------------------------- cohort
@@ -39,7 +40,7 @@ def check_manifest(path: Path) -> None:
 
 
 def _cohort(ctx: Context) -> dict:
-    import surfacekit as sk
+    from ..cohort import run_cohort
 
     a = ctx.args
     if a.workers < 1:
@@ -54,10 +55,10 @@ def _cohort(ctx: Context) -> dict:
     out = Path(a.output)
     if out.exists() and not out.is_dir():
         raise InputError(f"output {out} exists and is a file")
-    result = sk.run_cohort(manifest, out, a.template, workers=a.workers, scheduler=a.scheduler,
-                           target_vertices=a.target_vertices, n_permutations=a.permutations,
-                           seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty(),
-                           force=a.force)
+    result = run_cohort(manifest, out, a.template, workers=a.workers, scheduler=a.scheduler,
+                        target_vertices=a.target_vertices, n_permutations=a.permutations,
+                        seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty(),
+                        force=a.force)
     if result.n_failed == result.n_subjects:
         raise InputError(f"every subject failed; first: {result.failed[0][0]}: {result.failed[0][1]}")
     ctx.say(result.summary())
@@ -85,3 +86,11 @@ def _demo(ctx: Context) -> dict:
     out = ctx.outputs.claim(ctx.args.output, directory=True)
     return run_demo(out, size=ctx.args.size, seed=ctx.args.seed, quiet=ctx.quiet,
                     display_root=Path(ctx.args.output))
+
+
+COHORT = Command("cohort", "cohort run from a manifest",
+                 "Prepare, match to the template and compare groups for every subject of a manifest.",
+                 f"surfacekit cohort {D}/demo_cohort.csv -o cohort_out", _cohort_args, _cohort)
+DEMO = Command("demo", "run the synthetic demo end to end",
+               "Generate an invented, synthetic kidney follow-up study and run the whole job on it.",
+               "surfacekit demo -o surfacekit-demo", _demo_args, _demo)

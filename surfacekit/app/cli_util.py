@@ -1,16 +1,15 @@
-"""Helpers shared by the ``surfacekit`` subcommands: input checks, small writers."""
+"""Helpers shared by the ``surfacekit`` subcommands and the demo: input checks and records."""
 from __future__ import annotations
 
-import csv
-import json
 from pathlib import Path
 
-import numpy as np
-
-from .cli import InputError
+from ..mesh.surface import SurfaceError
+from .context import InputError
 
 VOLUME_SUFFIXES = (".nii", ".nii.gz")
 MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk")
+#: where ``surfacekit demo -o surfacekit-demo`` writes its inputs: the help examples use them
+DEMO_DATA = "surfacekit-demo/data"
 
 
 def existing(path: str, what: str = "input") -> Path:
@@ -28,7 +27,7 @@ def is_volume(path: Path) -> bool:
 
 def load_surface(path: str, what: str = "mesh"):
     """Load a mesh for a command; bad files become one-line input errors."""
-    import surfacekit as sk
+    from ..io.files import load
 
     p = existing(path, what)
     if is_volume(p):
@@ -36,15 +35,9 @@ def load_surface(path: str, what: str = "mesh"):
     if not p.name.lower().endswith(MESH_SUFFIXES):
         raise InputError(f"unsupported {what} format: {p.name} (use {', '.join(MESH_SUFFIXES)})")
     try:
-        return sk.load(p)
-    except sk.SurfaceError as exc:
+        return load(p)
+    except SurfaceError as exc:
         raise InputError(f"cannot read {p.name}: {exc}") from None
-
-
-def write_json(path: Path, data: dict) -> None:
-    from .cli import _json_default
-
-    path.write_text(json.dumps(data, indent=2, sort_keys=True, default=_json_default) + "\n")
 
 
 def input_record(path: Path, surface=None) -> dict:
@@ -66,7 +59,6 @@ def surface_facts(s) -> dict:
             "mean_edge_mm": float(s.mean_edge_length)}
 
 
-
 def without_timings(result):
     """Drop wall-clock timings from a result's ``info`` before it is saved.
 
@@ -86,16 +78,3 @@ def without_timings(result):
         result.info = strip(info)
         return timings
     return {}
-
-
-def write_rows_csv(path: Path, rows: list[dict]) -> None:
-    """Rows (dicts) to CSV with a stable column order and fixed float formatting."""
-    columns: list[str] = []
-    for r in rows:
-        columns += [c for c in r if c not in columns]
-    with open(path, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=columns, lineterminator="\n")
-        w.writeheader()
-        for r in rows:
-            w.writerow({k: (f"{v:.6g}" if isinstance(v, (float, np.floating)) else v)
-                        for k, v in r.items()})

@@ -4,19 +4,18 @@ Each command reads its inputs (failing fast with a one-line message), calls the
 library, and writes its outputs through ``ctx.outputs`` (staged, atomic, never
 replacing an existing output without ``--force``).  Examples in ``--help`` use
 the files that ``surfacekit demo -o surfacekit-demo`` writes, so they run as shown.
+The library is imported inside each command, so ``surfacekit --help`` stays quick.
 """
 from __future__ import annotations
 
-import argparse
 import time
-from collections.abc import Callable
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from .cli import Context, InputError
-from .batch_commands import _cohort, _cohort_args, _demo, _demo_args
+from ..io.tables import write_json
+from .batch_commands import COHORT, DEMO
+from .cli_util import DEMO_DATA as D
 from .cli_util import (
     existing,
     input_record,
@@ -24,21 +23,8 @@ from .cli_util import (
     load_surface,
     surface_facts,
     without_timings,
-    write_json,
-    write_rows_csv,
 )
-
-D = "surfacekit-demo/data"
-
-
-@dataclass
-class Command:
-    name: str
-    help: str
-    description: str
-    example: str
-    arguments: Callable[[argparse.ArgumentParser], None]
-    run: Callable[[Context], dict]
+from .context import Command, Context, InputError
 
 
 # ---------------------------------------------------------------- inspect
@@ -48,12 +34,12 @@ def _inspect_args(p):
 
 
 def _inspect(ctx: Context) -> dict:
-    import surfacekit as sk
+    from ..preparation import quality_report
 
     target = ctx.outputs.claim(ctx.args.output, suffixes=(".json",)) if ctx.args.output else None
     s = load_surface(ctx.args.mesh)
     summary = {"input": Path(ctx.args.mesh).name, **surface_facts(s)}
-    quality = sk.quality_report(s)
+    quality = quality_report(s)
     summary["quality"] = {k: v for k, v in quality.to_dict().items() if k != "warnings"}
     summary["warnings"] = list(quality.warnings)
     if target is not None:
@@ -74,7 +60,8 @@ def _prepare_args(p):
 
 
 def _prepare(ctx: Context) -> dict:
-    import surfacekit as sk
+    from ..io import save
+    from ..preparation import from_segmentation, prepare
 
     a = ctx.args
     if a.target_vertices is not None and a.target_vertices < 100:
@@ -83,14 +70,14 @@ def _prepare(ctx: Context) -> dict:
     src = existing(a.input)
     with ctx.progress(2, "prepare") as bar:
         if is_volume(src):
-            surface = sk.from_segmentation(src, a.label)
+            surface = from_segmentation(src, a.label)
         else:
             surface = load_surface(a.input)
         bar.update()
-        prepared, report = sk.prepare(surface, target_vertices=a.target_vertices,
-                                      smooth=False if a.no_smooth else None)
+        prepared, report = prepare(surface, target_vertices=a.target_vertices,
+                                   smooth=False if a.no_smooth else None)
         bar.update()
-    sk.save(prepared, target)
+    save(prepared, target)
     return {"input": src.name, "output": str(a.output), "before": surface_facts(surface),
             "after": surface_facts(prepared), "steps": report.to_dict()}
 
@@ -103,7 +90,14 @@ def _describe_args(p):
 
 
 def _describe(ctx: Context) -> dict:
-    import surfacekit as sk
+    from ..io import save_fields
+    from ..mesh.descriptors import (
+        gaussian_curvature,
+        heat_kernel_signature,
+        mean_curvature,
+        wave_kernel_signature,
+    )
+    from ..mesh.eigen import eigenbasis
 
     a = ctx.args
     if a.eigenpairs < 2:
@@ -114,17 +108,17 @@ def _describe(ctx: Context) -> dict:
         raise InputError(f"--eigenpairs {a.eigenpairs} must be below the vertex count {s.n_vertices}")
     arrays = {}
     with ctx.progress(4, "describe") as bar:
-        basis = sk.eigenbasis(s, a.eigenpairs)
+        basis = eigenbasis(s, a.eigenpairs)
         arrays["eigenvalues"] = basis.values
         bar.update()
-        arrays["hks"] = sk.heat_kernel_signature(s, basis=basis)
+        arrays["hks"] = heat_kernel_signature(s, basis=basis)
         bar.update()
-        arrays["wks"] = sk.wave_kernel_signature(s, basis=basis)
+        arrays["wks"] = wave_kernel_signature(s, basis=basis)
         bar.update()
-        arrays["mean_curvature"] = sk.mean_curvature(s)
-        arrays["gaussian_curvature"] = sk.gaussian_curvature(s)
+        arrays["mean_curvature"] = mean_curvature(s)
+        arrays["gaussian_curvature"] = gaussian_curvature(s)
         bar.update()
-    sk.save_fields(target, **arrays)
+    save_fields(target, **arrays)
     return {"input": Path(a.mesh).name, "output": str(a.output),
             "arrays": {k: list(np.shape(v)) for k, v in arrays.items()},
             "first_eigenvalues_per_mm2": [float(x) for x in basis.values[:5]]}
@@ -145,10 +139,10 @@ def _match_args(p):
 
 
 def _match_options(pose: str, landmarks: str | None = None):
-    import surfacekit as sk
+    from ..correspondence import MatchOptions, load_landmarks
 
-    pairs = () if landmarks is None else tuple(map(tuple, sk.load_landmarks(landmarks).tolist()))
-    return sk.MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose],
+    pairs = () if landmarks is None else tuple(map(tuple, load_landmarks(landmarks).tolist()))
+    return MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose],
                            landmarks=pairs)
 
 
@@ -175,14 +169,14 @@ def _map_summary(corr) -> dict:
 
 
 def _match(ctx: Context) -> dict:
-    import surfacekit as sk
+    from ..correspondence import solver
 
     a = ctx.args
     target_path = ctx.outputs.claim(a.output, suffixes=(".npz",))
     report_path = ctx.outputs.claim(a.report, suffixes=(".html",)) if a.report else None
     src, tgt = load_surface(a.source, "source"), load_surface(a.target, "target")
     t0 = time.perf_counter()
-    corr = sk.match(src, tgt, _match_options(a.pose, a.landmarks), seed=a.seed)
+    corr = solver.match(src, tgt, _match_options(a.pose, a.landmarks), seed=a.seed)
     seconds = time.perf_counter() - t0
     without_timings(corr)
     corr.save(target_path)
@@ -221,10 +215,10 @@ def _change_args(p):
 
 def load_regions(path: str, field: str):
     """A template surface and its integer per-vertex region labels."""
-    import surfacekit as sk
+    from ..io import load_with_fields
 
     p = existing(path, "region template")
-    template, fields = sk.io.load_with_fields(p)
+    template, fields = load_with_fields(p)
     if field not in fields:
         raise InputError(f"{p.name} has no per-vertex field {field!r} (fields: "
                          f"{', '.join(sorted(fields)) or 'none'})")
@@ -234,64 +228,73 @@ def load_regions(path: str, field: str):
     return template, labels.astype(np.int64)
 
 
-def _change(ctx: Context) -> dict:
-    import surfacekit as sk
+def _load_map(path: str, base, follow):
+    """A saved baseline -> follow-up correspondence that fits these two surfaces."""
+    from ..correspondence import Correspondence
 
+    corr = Correspondence.load(existing(path, "map"))
+    if corr.n_source != base.n_vertices or corr.n_target != follow.n_vertices:
+        raise InputError(f"map {Path(path).name} does not fit these surfaces "
+                         "(vertex counts differ)")
+    return corr
+
+
+def _write_change(out: Path, base, result) -> None:
+    """The change files: regional table, change fields, the map and the annotated baseline."""
+    from ..io import save
+
+    rep, corr = result.change, result.correspondence
+    without_timings(rep)
+    without_timings(corr)
+    rep.to_csv(out / "change.csv")
+    rep.save(out / "change.npz")
+    corr.save(out / "map.npz")
+    save(base, out / "baseline_change.ply", fields=rep.fields())
+
+
+def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
     from .report import write_report
     from .views import change_figures, change_panel
+
+    (base, follow), rep, corr = surfaces, result.change, result.correspondence
+    names = (Path(a.baseline).name, Path(a.followup).name)
+    regional = rep.regional_table() if result.labels is not None else None
+    write_report(out / "report.html", title="surfacekit change report",
+                 subtitle=f"{names[0]} → {names[1]}",
+                 panels=[change_panel(names[0], base, names[1], follow, corr, rep, result.labels)],
+                 summary=rep.summary(), tables={"Regions": regional} if regional else None,
+                 figures=change_figures(base, rep, regional, corr), figure_dir=out / "figures",
+                 provenance={"inputs": [input_record(Path(a.baseline), base),
+                                        input_record(Path(a.followup), follow)],
+                             "options": {"pose": a.pose, "seed": a.seed,
+                                         "map": a.map or "", "regions": a.regions or ""},
+                             "timings (s)": {k: round(v, 2) for k, v in timings.items()}})
+
+
+def _change(ctx: Context) -> dict:
+    from ..analysis.workflow import compare
 
     a = ctx.args
     out = ctx.outputs.claim(a.output, directory=True)
     base, follow = load_surface(a.baseline, "baseline"), load_surface(a.followup, "follow-up")
-    corr = None
     if a.map and a.landmarks:
         raise InputError("--landmarks has no effect with --map (the map is already made); give one of them")
-    if a.map:
-        corr = sk.Correspondence.load(existing(a.map, "map"))
-        if len(corr.source_to_target) != base.n_vertices or len(corr.target_to_source) != follow.n_vertices:
-            raise InputError(f"map {Path(a.map).name} does not fit these surfaces "
-                             "(vertex counts differ)")
-    regions = load_regions(a.regions, a.region_field) if a.regions else None
-    timings, t0 = {}, time.perf_counter()
-    with ctx.progress(4, "change") as bar:
-        if corr is None:
-            corr = sk.match(base, follow, _match_options(a.pose, a.landmarks), seed=a.seed)
-        timings["match"] = time.perf_counter() - t0
+    corr = _load_map(a.map, base, follow) if a.map else None
+    template, template_labels = load_regions(a.regions, a.region_field) if a.regions else (None, None)
+    timings: dict[str, float] = {}
+    with ctx.progress(3, "change") as bar:
+        # one match per pair of surfaces, all with the user's pose, landmarks and seed
+        result = compare(base, follow, options=_match_options(a.pose, a.landmarks), seed=a.seed,
+                         correspondence=corr, template=template, template_labels=template_labels,
+                         timings=timings)
         bar.update()
-        labels = None
-        if regions is not None:
-            labels, _ = sk.transfer_labels(regions[0], regions[1], base)
-        rep = sk.measure_change(base, follow, corr, labels=labels, seed=a.seed)
-        timings["change"] = time.perf_counter() - t0 - timings["match"]
-        bar.update()
-        without_timings(rep)
-        without_timings(corr)
-        rep.to_csv(out / "change.csv")
-        rep.save(out / "change.npz")
-        corr.save(out / "map.npz")
-        sk.save(base, out / "baseline_change.ply", fields=rep.fields())
-        regional = None
-        if labels is not None:
-            regional = rep.regional_table(labels)
-            write_rows_csv(out / "regions.csv", regional)
+        _write_change(out, base, result)
         bar.update()
         if not a.no_report:
-            names = (Path(a.baseline).name, Path(a.followup).name)
-            summary = rep.summary()
-            figs = change_figures(base, rep, regional, corr)
-            write_report(out / "report.html", title="surfacekit change report",
-                         subtitle=f"{names[0]} → {names[1]}",
-                         panels=[change_panel(names[0], base, names[1], follow, corr, rep, labels)],
-                         summary=summary, tables={"Regions": regional} if regional else None,
-                         figures=figs, figure_dir=out / "figures",
-                         provenance={"inputs": [input_record(Path(a.baseline), base),
-                                                input_record(Path(a.followup), follow)],
-                                     "options": {"pose": a.pose, "seed": a.seed,
-                                                 "map": a.map or "", "regions": a.regions or ""},
-                                     "timings (s)": {k: round(v, 2) for k, v in timings.items()}})
+            _change_report(out, a, (base, follow), result, timings)
         bar.update()
     return {"baseline": Path(a.baseline).name, "followup": Path(a.followup).name,
-            "output": str(a.output), **rep.summary(), **_map_summary(corr)}
+            "output": str(a.output), **result.change.summary(), **_map_summary(result.correspondence)}
 
 
 COMMANDS = [
@@ -313,10 +316,6 @@ COMMANDS = [
             "Displacement, area and volume change, regional table and report.",
             f"surfacekit change {D}/kidney_baseline.ply {D}/kidney_followup.ply "
             f"--regions {D}/kidney_template.ply -o change_out", _change_args, _change),
-    Command("cohort", "cohort run from a manifest",
-            "Prepare, match to the template and compare groups for every subject of a manifest.",
-            f"surfacekit cohort {D}/demo_cohort.csv -o cohort_out", _cohort_args, _cohort),
-    Command("demo", "run the synthetic demo end to end",
-            "Generate an invented, synthetic kidney follow-up study and run the whole job on it.",
-            "surfacekit demo -o surfacekit-demo", _demo_args, _demo),
+    COHORT,
+    DEMO,
 ]

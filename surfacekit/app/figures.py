@@ -20,11 +20,11 @@ def _plt():
 def _cmap(kind: str):
     from matplotlib.colors import LinearSegmentedColormap, ListedColormap
 
-    from . import report
+    from . import panels
 
     if kind == "labels":
-        return ListedColormap(report.LABEL_COLOURS)
-    scale = {"diverging": report.DIVERGING, "cyclic": report.CYCLIC}.get(kind, report.SEQUENTIAL)
+        return ListedColormap(panels.LABEL_COLOURS)
+    scale = {"diverging": panels.DIVERGING, "cyclic": panels.CYCLIC}.get(kind, panels.SEQUENTIAL)
     return LinearSegmentedColormap.from_list(f"sk_{kind}", [(p, c) for p, c in scale])
 
 

@@ -1,15 +1,17 @@
 """Report panels and figures for the main results: a correspondence, a change, a cohort test.
 
 Shared by the command line and the demo; the HTML assembly lives in
-:mod:`surfacekit.report`, the matplotlib drawing in :mod:`surfacekit.report_figures`.
+:mod:`surfacekit.app.report`, the matplotlib drawing in :mod:`surfacekit.app.figures`.
 """
 from __future__ import annotations
 
 import numpy as np
 
-from . import figures as figs
-from .report import ReportLayer, ReportPanel
+from ..correspondence.evaluation import face_distortion
+from ..mesh.laplacian import face_to_vertex_mean
 from ..mesh.surface import Surface
+from . import figures as figs
+from .panels import ReportLayer, ReportPanel
 
 
 def colour_fields(surface: Surface) -> tuple[np.ndarray, np.ndarray]:
@@ -34,23 +36,19 @@ def colour_fields(surface: Surface) -> tuple[np.ndarray, np.ndarray]:
 
 
 def map_distortion(source: Surface, target: Surface, source_to_target: np.ndarray) -> np.ndarray:
-    """Per-source-vertex metric distortion of a point map, ``(n_source,)``, log2 units.
+    """Per-source-vertex area distortion of a point map, ``(n_source,)``, log2 units.
 
-    Each mesh edge (a, b) of the source is mapped to the target points
-    (f(a), f(b)); the log2 of its length ratio is averaged over the edges at a
-    vertex.  0 = locally isometric, +1 = stretched twice.  Edge-length
-    distortion is a common practice measure for dense maps.
+    The area ratio σ1σ2 of the piecewise-linear map on each source face, both
+    surfaces scaled to unit area (:func:`surfacekit.correspondence.evaluation.face_distortion`,
+    the measure behind ``map_quality``), as log2 and averaged over the faces
+    around each vertex weighted by face area.  0 = area kept, +1 = twice the
+    area, -1 = half; a map that folds a face shows as strongly negative
+    (ratios are clipped to [2^-8, 2^8]).
     """
-    e = source.edges
-    f = np.asarray(source_to_target, dtype=np.int64)
-    len_s = np.linalg.norm(source.vertices[e[:, 0]] - source.vertices[e[:, 1]], axis=1)
-    len_t = np.linalg.norm(target.vertices[f[e[:, 0]]] - target.vertices[f[e[:, 1]]], axis=1)
-    floor = 1e-3 * float(np.median(len_s))
-    ratio = np.log2(np.maximum(len_t, floor) / np.maximum(len_s, floor))
-    n = source.n_vertices
-    total = np.bincount(e[:, 0], ratio, n) + np.bincount(e[:, 1], ratio, n)
-    count = np.bincount(e[:, 0], minlength=n) + np.bincount(e[:, 1], minlength=n)
-    return total / np.maximum(count, 1)
+    sigma, weights = face_distortion(source, target, source_to_target)
+    ratio = np.clip(sigma[:, 0] * sigma[:, 1], 2.0**-8, 2.0**8)
+    log_ratio = np.log2(np.where(weights > 0, ratio, 1.0))  # degenerate source faces: 0
+    return face_to_vertex_mean(source, log_ratio)
 
 
 def correspondence_layers(source: Surface, target: Surface, corr) -> list[ReportLayer]:
@@ -73,11 +71,12 @@ def correspondence_layers(source: Surface, target: Surface, corr) -> list[Report
         layers.append(ReportLayer("map confidence", [conf_s, conf_t], kind="sequential",
                                   limits=(0.0, 1.0),
                                   description="Per-vertex confidence of the map in [0, 1]."))
-    layers.append(ReportLayer("map distortion (edge stretch)",
+    layers.append(ReportLayer("map distortion (area)",
                               [map_distortion(source, target, corr.source_to_target), None],
                               kind="diverging", unit="log2",
-                              description="Log2 length ratio of mapped edges: 0 is isometric, "
-                                          "red is stretched, blue compressed."))
+                              description="Log2 area ratio of the mapped triangles, both surfaces "
+                                          "scaled to unit area: 0 keeps area, red is stretched, "
+                                          "blue compressed."))
     return layers
 
 

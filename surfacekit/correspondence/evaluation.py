@@ -88,24 +88,40 @@ def _frame_coords(p: np.ndarray) -> np.ndarray:
                      np.stack([np.einsum("ij,ij->i", e2, x), np.einsum("ij,ij->i", e2, y)], 1)], 2)
 
 
-def distortion(source: Surface, target: Surface, source_to_target: np.ndarray) -> dict:
-    """Area and conformal distortion of the piecewise-linear map source -> target.
+def face_distortion(source: Surface, target: Surface,
+                    source_to_target: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Singular values of the piecewise-linear map source -> target on every source face.
 
     Each source triangle is sent to the triangle spanned by the images of its
-    corners (both surfaces scaled to unit area).  From the 2x2 Jacobian in local
-    frames with singular values σ1 >= σ2: area ratio σ1σ2 and conformal
-    (quasi-conformal) distortion σ1/σ2 (Ahlfors 1966; common practice in
-    parameterisation).  Collapsed images (σ2 ~ 0) are counted, not averaged.
+    corners (both surfaces scaled to unit area, so a change of size is no
+    distortion).  Returns ``(sigma (n_faces, 2), weights (n_faces,))``: the singular
+    values σ1 >= σ2 of the 2x2 Jacobian in local frames (NaN on degenerate source
+    faces) and each face's share of the source area (0 on degenerate faces).
     """
     f = source.faces
     ps = source.vertices[f] / np.sqrt(source.area)
-    pt = target.vertices[source_to_target[f]] / np.sqrt(target.area)
+    pt = target.vertices[np.asarray(source_to_target)[f]] / np.sqrt(target.area)
     A, B = _frame_coords(ps), _frame_coords(pt)
     ok = np.abs(np.linalg.det(A)) > 1e-14
     J = B[ok] @ np.linalg.inv(A[ok])
-    sv = np.linalg.svd(J, compute_uv=False)
+    sigma = np.full((len(f), 2), np.nan)
+    sigma[ok] = np.linalg.svd(J, compute_uv=False)
+    weights = np.zeros(len(f))
+    weights[ok] = source.face_areas[ok] / source.face_areas[ok].sum()
+    return sigma, weights
+
+
+def distortion(source: Surface, target: Surface, source_to_target: np.ndarray) -> dict:
+    """Area and conformal distortion of the piecewise-linear map source -> target.
+
+    From the singular values σ1 >= σ2 of :func:`face_distortion`: area ratio σ1σ2
+    and conformal (quasi-conformal) distortion σ1/σ2 (Ahlfors 1966; common
+    practice in parameterisation).  Collapsed images (σ2 ~ 0) are counted, not averaged.
+    """
+    sigma, weights = face_distortion(source, target, source_to_target)
+    ok = np.isfinite(sigma[:, 0])
+    sv, w = sigma[ok], weights[ok]
     collapsed = sv[:, 1] < 1e-6 * np.maximum(sv[:, 0], 1e-300)
-    w = source.face_areas[ok] / source.face_areas[ok].sum()
     good = ~collapsed
     log_area = np.log(sv[good, 0] * sv[good, 1])
     conf = sv[good, 0] / sv[good, 1]
