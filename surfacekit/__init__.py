@@ -43,6 +43,7 @@ _LAZY = {
     # analysis
     "rigid_transform": "analysis", "similarity_transform": "analysis",
     "measure_change": "analysis", "ChangeReport": "analysis",
+    "compare": "analysis", "Comparison": "analysis",
     "transfer_labels": "analysis", "generalized_procrustes": "analysis",
     "ShapeModel": "analysis", "shape_model": "analysis",
     "vertexwise_group_test": "analysis", "GroupTestResult": "analysis",
@@ -66,6 +67,7 @@ _SUBMODULES = {
 __all__ = [
     "AmbiguousMatchWarning",
     "ChangeReport",
+    "Comparison",
     "Correspondence",
     "EigenSolverWarning",
     "Eigenbasis",
@@ -78,6 +80,7 @@ __all__ = [
     "Surface",
     "SurfaceError",
     "__version__",
+    "compare",
     "cotangent_laplacian",
     "divergence",
     "eigenbasis",
