@@ -35,6 +35,12 @@ def coincident_vertex_map(vertices: np.ndarray, tolerance: float | None = None) 
     pairs = cKDTree(v).query_pairs(r=tolerance, output_type="ndarray")
     if len(pairs) == 0:
         return np.arange(n)
+    return group_representatives(pairs, n)
+
+
+def group_representatives(pairs: np.ndarray, n: int) -> np.ndarray:
+    """(n,) lowest index of the group of each of n items, groups joined transitively by
+    the (p, 2) index pairs (connected components of the pair graph)."""
     g = sp.coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
     _, labels = connected_components(g, directed=False)
     first = np.full(labels.max() + 1, n, dtype=np.int64)

@@ -8,10 +8,10 @@ from __future__ import annotations
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.sparse.csgraph import breadth_first_order, connected_components
+from scipy.sparse.csgraph import breadth_first_order
 from scipy.sparse.linalg import spsolve
 
-from .mesh_quality import coincident_vertex_map, degenerate_faces
+from .mesh_quality import coincident_vertex_map, degenerate_faces, group_representatives
 from ..mesh.connectivity import Connectivity
 from ..mesh.surface import Surface, SurfaceError
 
@@ -60,12 +60,7 @@ def remove_degenerate_faces(v: np.ndarray, f: np.ndarray):
             c = lengths.argmin(axis=1)
             i = fs[np.arange(len(fs)), c]
             j = fs[np.arange(len(fs)), (c + 1) % 3]
-            n = len(v)
-            g = sp.coo_matrix((np.ones(len(i)), (i, j)), shape=(n, n))
-            _, lab = connected_components(g, directed=False)
-            first = np.full(lab.max() + 1, n, dtype=np.int64)
-            np.minimum.at(first, lab, np.arange(n))
-            f = first[lab][f]
+            f = group_representatives(np.stack([i, j], axis=1), len(v))[f]  # merge each pair
         f = f[~((f[:, 0] == f[:, 1]) | (f[:, 1] == f[:, 2]) | (f[:, 0] == f[:, 2]))]
     return v, f, m0 - len(f)
 
