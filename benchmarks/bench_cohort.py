@@ -89,7 +89,7 @@ def main() -> None:
         warm = root / "warm"
         t0 = time.perf_counter()
         prepare_template(read_manifest(manifest).template, warm,
-                         pipeline_options(args.vertices, 50, 0))
+                         pipeline_options(args.vertices, 50, 0, sk.MatchOptions()))
         print(f"cohort: {args.subjects} subjects x {args.vertices} vertices, "
               f"{os.cpu_count()} CPUs; template prepared in {time.perf_counter() - t0:.1f} s")
 

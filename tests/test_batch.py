@@ -1,12 +1,12 @@
-"""Cohort runs (surfacekit/batch*.py): manifest, cache and resume, failure rows, engines.
+"""Cohort runs (surfacekit/cohort/): manifest, cache and resume, failure rows, engines.
 
 The small synthetic cohort (labelled synthetic, ~1.5k vertices per surface):
 the template (a kidney-like surface), a rigidly moved copy of it, a uniformly
 scaled (x1.1) and rotated copy, two differently triangulated and deformed
 kidneys, a corrupt PLY file and a label volume whose manifest label is absent.
-Engine checks compare against the in-process run, the reference the issue names
-("byte-identical CSV tables serially, with 2 local workers, and on a Dask
-scheduler plus workers started on loopback").
+Engine checks compare against the in-process run: the CSV tables must be
+byte-identical serially, with 2 local workers, and on a Dask scheduler plus
+workers started on loopback.
 """
 from __future__ import annotations
 
@@ -24,8 +24,9 @@ import pytest
 
 import surfacekit as sk
 from surfacekit.cohort.engines import loopback_cluster
-from surfacekit.cohort.manifest import cache_key, format_value, read_manifest
+from surfacekit.cohort.manifest import cache_key, read_manifest
 from surfacekit.cohort.tables import covariate_matrix
+from surfacekit.io.tables import format_value
 
 N_VERTICES = 1500
 TABLES = ("cohort_summary.csv", "group_test.csv")
@@ -93,8 +94,8 @@ def _same_tables(a: Path, b: Path) -> None:
 
 
 def test_manifest_parsing_and_errors(tmp_path):
-    """Contract of /work/notes/contracts.md: header required, one template row, paths
-    relative to the manifest, integer labels, safe and unique ids."""
+    """The manifest format of surfacekit.cohort.manifest: header required, one template row,
+    paths relative to the manifest, integer labels, safe and unique ids."""
     (tmp_path / "t.ply").write_text("x")
     good = tmp_path / "m.csv"
     good.write_text("subject,path,label,group,role,age,sex,site\n"

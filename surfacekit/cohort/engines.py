@@ -1,6 +1,6 @@
 """Engines that run cohort tasks: in-process, local processes, or a Dask cluster.
 
-Every engine calls the same :func:`surfacekit.batch_subject.run_subject` and
+Every engine calls the same :func:`surfacekit.cohort.subject.run_subject` and
 yields its small result rows in completion order; the caller orders them by
 manifest position, so the tables never depend on the engine or on timing.
 """
@@ -20,6 +20,8 @@ from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from contextlib import contextmanager
 from pathlib import Path
 
+from threadpoolctl import threadpool_limits
+
 from .subject import SubjectTask, one_line, run_subject
 
 _BLAS_LIMIT = None
@@ -32,8 +34,6 @@ def pin_blas_threads(n_threads: int = 1) -> None:
     oversubscribe the machine (common practice for process pools over NumPy code).
     """
     global _BLAS_LIMIT
-    from threadpoolctl import threadpool_limits
-
     _BLAS_LIMIT = threadpool_limits(limits=n_threads)
 
 

@@ -13,7 +13,6 @@ from __future__ import annotations
 import csv
 import hashlib
 import json
-import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,7 +20,7 @@ from pathlib import Path
 REQUIRED_COLUMNS = ("subject", "path", "label", "group", "role", "age", "sex")
 VOLUME_SUFFIXES = (".nii", ".nii.gz")
 # Bump when the per-subject computation changes meaning, so old caches are not reused.
-PIPELINE_VERSION = "cohort-1"
+PIPELINE_VERSION = "cohort-2"   # 2: area-weighted change metrics, one eigenbasis per surface
 _SUBJECT_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
 
 
@@ -167,23 +166,3 @@ def cache_key(*, input_digest: str, label: int | None, template_key: str, option
                           "options": options, "version": version, "pipeline": PIPELINE_VERSION},
                          sort_keys=True)
     return hashlib.sha256(payload.encode()).hexdigest()[:24]
-
-
-def format_value(value) -> str:
-    """Deterministic CSV text of a value: floats as ``%.6g``, NaN/None as empty.
-
-    Six significant digits print the same text for the same float on every
-    engine and platform, so tables compare byte for byte.
-    """
-    if value is None:
-        return ""
-    if isinstance(value, bool):
-        return "1" if value else "0"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        if math.isnan(value):
-            return ""
-        text = f"{value:.6g}"
-        return "0" if text == "-0" else text
-    return str(value)

@@ -1,21 +1,22 @@
 """Cohorts at scale: the per-subject pipeline over a manifest, locally or on a Dask cluster.
 
-For each subject of a cohort manifest (see :mod:`surfacekit.batch_manifest`):
-load the mesh or label volume -> ``sk.prepare`` -> Laplace spectrum -> ``sk.match`` to
-the template -> ``sk.measure_change`` (fields per template vertex); results are
+For each subject of a cohort manifest (see :mod:`surfacekit.cohort.manifest`):
+load the mesh or label volume -> ``prepare`` -> Laplace spectrum -> ``match`` to
+the template -> ``measure_change`` (fields per template vertex); results are
 written under ``output_dir/subjects/<id>/`` and marked done under a key derived
-from the input bytes, template, options and package version, so a re-run skips
-finished subjects and an interrupted run resumes.  Then the cohort tables are
+from the input bytes, template, options (including the ``MatchOptions``) and
+package version, so a re-run skips finished subjects, an interrupted run resumes
+and changed options recompute.  Then the cohort tables are
 written in manifest order (``cohort_summary.csv``, ``cohort_fields.npz``,
 ``group_test.csv``), byte-identical whatever the engine or completion order.
 
 Layout of ``output_dir``::
 
-    template/template.npz, template.ply, <key>.done
+    template/template.npz (vertices, faces), template.ply, <key>.done
     subjects/<id>/fields.npz, prepared.ply, on_template.ply, row.json, timings.json, <key>.done
     cohort_summary.csv  cohort_fields.npz  group_test.csv  run_summary.json
 
-For research use only; not for diagnosis or treatment decisions.
+The research-use note of :data:`surfacekit.io.tables.RESEARCH_NOTE` applies.
 """
 from __future__ import annotations
 
@@ -25,7 +26,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+from threadpoolctl import threadpool_limits
+from tqdm.auto import tqdm
 
+from ..correspondence import MatchOptions
+from ..io.files import save, save_fields
+from ..io.tables import write_json
 from ..version import __version__
 from .engines import engine_name, run_tasks
 from .manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
@@ -36,11 +42,8 @@ from .subject import (
     load_input_surface,
     prepare_surface,
     read_finished,
-    save_npz_deterministic,
-    subject_spectrum,
-    write_json,
 )
-from .tables import write_fields_matrix, write_group_test, write_summary
+from .tables import check_covariate_names, write_fields_matrix, write_group_test, write_summary
 
 logger = logging.getLogger(__name__)
 
@@ -116,49 +119,118 @@ def _digest_or_marker(path: Path) -> str:
         return "unreadable"
 
 
-def pipeline_options(target_vertices: int | None, n_eigenvalues: int, seed: int) -> dict:
+def pipeline_options(target_vertices: int | None, n_eigenvalues: int, seed: int,
+                     match_options: MatchOptions) -> dict:
     """The options that enter the per-subject computation (and so the cache keys)."""
     return {"target_vertices": None if target_vertices is None else int(target_vertices),
-            "n_eigenvalues": int(n_eigenvalues), "seed": int(seed)}
+            "n_eigenvalues": int(n_eigenvalues), "seed": int(seed),
+            "match": match_options.to_dict()}
 
 
 def prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Path, str, int]:
     """Prepare the template once (in this process) and store it exactly (NPZ, float64).
 
-    Bad template input raises (SurfaceError / ValueError): without a template no
-    subject can be processed.
+    Its eigenbasis and spectrum are computed by the workers, once per process, on
+    first use.  Bad template input raises (SurfaceError / ValueError): without a
+    template no subject can be processed.
     """
-    from threadpoolctl import threadpool_limits
-
     if not entry.path.is_file():
         raise ValueError(f"template not found: {entry.path}")
+    # only the resampling shapes the stored template; every other option enters the subject keys
     key = cache_key(input_digest=file_digest(entry.path), label=entry.label, template_key="",
-                    options=options, version=__version__)
+                    options={"target_vertices": options["target_vertices"]},
+                    version=__version__)
     tdir = out / "template"
     tfile = tdir / "template.npz"
     if not ((tdir / f"{key}{MARKER_SUFFIX}").is_file() and tfile.is_file()):
-        import surfacekit as sk
-
         tdir.mkdir(parents=True, exist_ok=True)
         for stale in tdir.glob(f"*{MARKER_SUFFIX}"):
             stale.unlink()
         with threadpool_limits(limits=1):  # same arithmetic as in the pinned workers
             template = prepare_surface(load_input_surface(entry.path, entry.label), options)
-            spectrum = subject_spectrum(template, options)
-        save_npz_deterministic(tfile, {"vertices": template.vertices, "faces": template.faces,
-                                       "laplace_spectrum": spectrum})
-        sk.save(template, tdir / "template.ply")
+        save_fields(tfile, vertices=template.vertices, faces=template.faces)
+        save(template, tdir / "template.ply")
         (tdir / f"{key}{MARKER_SUFFIX}").write_text(key + "\n")
     with np.load(tfile, allow_pickle=False) as data:
         n_template = int(data["vertices"].shape[0])
     return tfile, key, n_template
 
 
+def _plan(man: Manifest, out: Path, template: tuple[Path, str], options: dict,
+          match_options: MatchOptions, force: bool) -> tuple[list, list[SubjectTask]]:
+    """Rows of subjects finished under their current key, and tasks for the others."""
+    tfile, tkey = template
+    rows: list[dict | None] = [None] * len(man.subjects)
+    tasks: list[SubjectTask] = []
+    for i, entry in enumerate(man.subjects):
+        sdir = out / "subjects" / entry.subject
+        key = cache_key(input_digest=_digest_or_marker(entry.path), label=entry.label,
+                        template_key=tkey, options=options, version=__version__)
+        stored = None if force else read_finished(sdir, key)
+        if stored is not None:
+            rows[i] = {"index": i, "subject": entry.subject, "key": key, "cached": True,
+                       "status": "ok", "error": "", "values": stored}
+        else:
+            tasks.append(SubjectTask(index=i, subject=entry.subject, path=str(entry.path),
+                                     label=entry.label, key=key, subject_dir=str(sdir),
+                                     template_file=str(tfile), template_key=tkey,
+                                     options=options, match_options=match_options))
+    return rows, tasks
+
+
+def _collect(results, rows: list, total: int, n_done: int, progress: bool) -> tuple[dict, dict]:
+    """Place each finished row at its manifest position; sum stage times, track peak memory."""
+    stage_seconds = {s: 0.0 for s in (*STAGES, "cpu")}
+    peak: dict[str, float] = {}
+    bar = (tqdm(total=total, initial=n_done, unit="subject", desc="cohort", dynamic_ncols=True)
+           if progress else None)
+    n_failed_live = 0
+    try:
+        for row in results:
+            rows[row["index"]] = row
+            for s in (*STAGES, "cpu"):
+                stage_seconds[s] += float(row.get("timings", {}).get(s, 0.0))
+            w = row.get("worker") or {}
+            if w:
+                tag = f"{w['host']}:{w['pid']}"
+                peak[tag] = max(peak.get(tag, 0.0), float(w["peak_rss_mb"]))
+            n_failed_live += row["status"] != "ok"
+            if bar is not None:
+                bar.update(1)
+                if n_failed_live:
+                    bar.set_postfix(failed=n_failed_live)
+    finally:
+        if bar is not None:
+            bar.close()
+    return stage_seconds, peak
+
+
+def _write_tables(out: Path, man: Manifest, rows: list[dict], n_template: int, options: dict,
+                  *, n_permutations: int) -> dict:
+    """The cohort tables, in manifest order; a stale group test of an earlier run is removed."""
+    subject_dirs = [out / "subjects" / e.subject for e in man.subjects]
+    tables = {"summary": write_summary(out / "cohort_summary.csv", man, rows)}
+    tables["fields"] = write_fields_matrix(out / "cohort_fields.npz", man, rows, subject_dirs,
+                                           n_template, options["n_eigenvalues"])
+    group_file = out / "group_test.csv"
+    try:
+        written = write_group_test(group_file, man, rows, tables["fields"],
+                                   n_permutations=n_permutations, seed=options["seed"])
+    except ValueError as exc:  # e.g. fields identical across subjects: keep the other tables
+        logger.warning("cohort: no group test: %s", exc)
+        written = None
+    if written is not None:
+        tables["group_test"] = written
+    elif group_file.exists():  # a stale test from an earlier run would mislead
+        group_file.unlink()
+    return tables
+
+
 def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
                scheduler: str | None = None, target_vertices: int | None = 5000,
                n_eigenvalues: int = 50, n_permutations: int = 5000, seed: int = 0,
-               progress: bool = True, force: bool = False,
-               max_tasks_per_worker: int | None = None) -> CohortResult:
+               match_options: MatchOptions | None = None, progress: bool = True,
+               force: bool = False, max_tasks_per_worker: int | None = None) -> CohortResult:
     """Run the per-subject pipeline over a cohort manifest and write the cohort tables.
 
     Parameters
@@ -169,10 +241,14 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     workers : 1 runs in this process; N > 1 uses N local processes ("spawn")
     scheduler : address of a Dask scheduler (e.g. ``tcp://10.0.0.5:8786``); the
         workers must see `output_dir` and the inputs at the same paths
-    target_vertices : vertex count every surface is resampled to by ``sk.prepare``
-    n_eigenvalues : length of the Laplace spectrum spectrum
+    target_vertices : vertex count every surface is resampled to by ``prepare``
+    n_eigenvalues : length of the Laplace spectrum (non-zero eigenvalues)
     n_permutations : permutations of the vertex-wise group test
     seed : seed of matching, change measures and the group test
+    match_options : settings of ``match`` from the template to each subject (default
+        ``MatchOptions()``); part of the cache key and of ``run_summary.json``.
+        Landmark vertex indices refer to the prepared template and the prepared
+        subject, so they suit cohorts whose surfaces are not resampled.
     progress : show a progress bar over subjects (stderr)
     force : recompute every subject even when a finished result exists
     max_tasks_per_worker : restart a local worker process after this many subjects
@@ -192,72 +268,25 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         raise ValueError(f"workers must be >= 1, got {workers}")
     if target_vertices is not None and int(target_vertices) < 100:
         raise ValueError(f"target_vertices must be >= 100, got {target_vertices}")
+    match_options = MatchOptions() if match_options is None else match_options
+    if not isinstance(match_options, MatchOptions):
+        raise ValueError("match_options must be a MatchOptions, got "
+                         f"{type(match_options).__name__}")
+    match_options.validate()
     start = time.perf_counter()
     man: Manifest = read_manifest(manifest, template=template)
+    check_covariate_names(man)
     out = Path(output_dir)
     (out / "subjects").mkdir(parents=True, exist_ok=True)
-    options = pipeline_options(target_vertices, n_eigenvalues, seed)
+    options = pipeline_options(target_vertices, n_eigenvalues, seed, match_options)
     tfile, tkey, n_template = prepare_template(man.template, out, options)
-
-    rows: list[dict | None] = [None] * len(man.subjects)
-    subject_dirs = [out / "subjects" / e.subject for e in man.subjects]
-    tasks: list[SubjectTask] = []
-    for i, (entry, sdir) in enumerate(zip(man.subjects, subject_dirs)):
-        key = cache_key(input_digest=_digest_or_marker(entry.path), label=entry.label,
-                        template_key=tkey, options=options, version=__version__)
-        stored = None if force else read_finished(sdir, key)
-        if stored is not None:
-            rows[i] = {"index": i, "subject": entry.subject, "key": key, "cached": True,
-                       "status": "ok", "error": "", "values": stored}
-        else:
-            tasks.append(SubjectTask(index=i, subject=entry.subject, path=str(entry.path),
-                                     label=entry.label, key=key, subject_dir=str(sdir),
-                                     template_file=str(tfile), template_key=tkey,
-                                     options=options))
-
-    stage_seconds = {s: 0.0 for s in (*STAGES, "cpu")}
-    peak: dict[str, float] = {}
-    bar = None
-    if progress:
-        from tqdm.auto import tqdm
-
-        bar = tqdm(total=len(man.subjects), initial=len(man.subjects) - len(tasks),
-                   unit="subject", desc="cohort", dynamic_ncols=True)
-    n_failed_live = 0
-    try:
-        for row in run_tasks(tasks, workers=int(workers), scheduler=scheduler,
-                             max_tasks_per_worker=max_tasks_per_worker):
-            rows[row["index"]] = row
-            for s in (*STAGES, "cpu"):
-                stage_seconds[s] += float(row.get("timings", {}).get(s, 0.0))
-            w = row.get("worker") or {}
-            if w:
-                tag = f"{w['host']}:{w['pid']}"
-                peak[tag] = max(peak.get(tag, 0.0), float(w["peak_rss_mb"]))
-            n_failed_live += row["status"] != "ok"
-            if bar is not None:
-                bar.update(1)
-                if n_failed_live:
-                    bar.set_postfix(failed=n_failed_live)
-    finally:
-        if bar is not None:
-            bar.close()
-
-    tables = {"summary": write_summary(out / "cohort_summary.csv", man, rows)}
-    tables["fields"] = write_fields_matrix(out / "cohort_fields.npz", man, rows, subject_dirs,
-                                           n_template, options["n_eigenvalues"])
-    group_file = out / "group_test.csv"
-    try:
-        written = write_group_test(group_file, man, rows, tables["fields"],
-                                   n_permutations=int(n_permutations), seed=int(seed))
-    except ValueError as exc:  # e.g. fields identical across subjects: keep the other tables
-        logger.warning("cohort: no group test: %s", exc)
-        written = None
-    if written is not None:
-        tables["group_test"] = written
-    elif group_file.exists():  # a stale test from an earlier run would mislead
-        group_file.unlink()
-
+    rows, tasks = _plan(man, out, (tfile, tkey), options, match_options, force)
+    results = run_tasks(tasks, workers=int(workers), scheduler=scheduler,
+                        max_tasks_per_worker=max_tasks_per_worker)
+    stage_seconds, peak = _collect(results, rows, len(man.subjects),
+                                   len(man.subjects) - len(tasks), progress)
+    tables = _write_tables(out, man, rows, n_template, options,
+                           n_permutations=int(n_permutations))
     result = CohortResult(
         output_dir=out, engine=engine_name(int(workers), scheduler), rows=rows,
         n_computed=len(tasks), n_cached=len(man.subjects) - len(tasks),

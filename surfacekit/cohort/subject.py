@@ -17,15 +17,28 @@ import sys
 import time
 import traceback
 import warnings
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
+from ..analysis.workflow import compare
+from ..correspondence import AmbiguousMatchWarning, MatchOptions
+from ..io.files import atomic_path, load, save, save_fields
+from ..io.tables import write_json
+from ..mesh.descriptors import laplace_spectrum, spectrum_distance
+from ..mesh.eigen import Eigenbasis, eigenbasis
+from ..mesh.surface import Surface
+from ..preparation import from_segmentation, prepare
 from .manifest import VOLUME_SUFFIXES
-from ..io.files import atomic_path, save_fields
 
 STAGES = ("load", "prepare", "descriptors", "match", "change", "write")
+# change metrics of the cohort table, taken from the change report's own (area-weighted)
+# definitions, so a subject's row equals its change summary
+CHANGE_COLUMNS = ("mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
+                  "mean_log_area_ratio")
 MARKER_SUFFIX = ".done"
 
 
@@ -41,65 +54,70 @@ class SubjectTask:
     subject_dir: str
     template_file: str      # prepared template, NPZ (exact float64)
     template_key: str
-    options: dict
+    options: dict           # target_vertices, n_eigenvalues, seed, match (as in the cache key)
+    match_options: MatchOptions
 
 
-def save_npz_deterministic(path, arrays: dict) -> Path:
-    """Arrays to an NPZ atomically, with byte-reproducible zip members."""
-    return save_fields(path, **arrays)
-
-
-def write_json(path, payload: dict) -> None:
-    with atomic_path(Path(path), suffix=".json") as tmp:
-        tmp.write_text(json.dumps(payload, indent=1, sort_keys=True) + "\n")
-
-
-def load_input_surface(path, label: int | None):
-    """A mesh file through ``sk.load`` or a label volume through ``sk.from_segmentation``."""
-    import surfacekit as sk
-
+def load_input_surface(path, label: int | None) -> Surface:
+    """A mesh file through :func:`load` or a label volume through :func:`from_segmentation`."""
     path = Path(path)
     if not path.is_file():
         raise FileNotFoundError(f"input file not found: {path}")
     if path.name.lower().endswith(VOLUME_SUFFIXES):
         if label is None:
             raise ValueError(f"label missing for label volume {path.name}")
-        return sk.from_segmentation(path, label)
-    return sk.load(path)
+        return from_segmentation(path, label)
+    return load(path)
 
 
-def prepare_surface(surface, options: dict):
-    import surfacekit as sk
-
-    prepared, _report = sk.prepare(surface, target_vertices=options["target_vertices"])
+def prepare_surface(surface: Surface, options: dict) -> Surface:
+    """The surface repaired and resampled to ``options["target_vertices"]`` by :func:`prepare`."""
+    prepared, _report = prepare(surface, target_vertices=options["target_vertices"])
     return prepared
 
 
-def subject_spectrum(surface, options: dict) -> np.ndarray:
-    import surfacekit as sk
+def shared_eigenbasis(surface: Surface, options: dict, match_options: MatchOptions) -> Eigenbasis:
+    """The one eigenbasis of a surface that serves both its spectrum and the matching.
 
-    return np.asarray(sk.laplace_spectrum(surface, k=options["n_eigenvalues"]), dtype=np.float64)
+    Asks first for the larger of the two bases (the spectrum needs
+    ``n_eigenvalues`` non-zero eigenvalues, one zero eigenvalue per component
+    before them; the matching ``match_options.n_eigen`` pairs), so the cache on the
+    surface answers the smaller request by truncation and the eigenproblem is
+    solved once.  Every process asks in the same order, so every engine gets the
+    same bits.
+    """
+    n_zero = max(1, surface.n_components)
+    return eigenbasis(surface, max(int(options["n_eigenvalues"]) + n_zero,
+                                   int(match_options.n_eigen)))
+
+
+def surface_spectrum(surface: Surface, options: dict, match_options: MatchOptions) -> np.ndarray:
+    """Laplace spectrum (``n_eigenvalues`` values, dimensionless) from :func:`shared_eigenbasis`."""
+    basis = shared_eigenbasis(surface, options, match_options)
+    return np.asarray(laplace_spectrum(surface, k=options["n_eigenvalues"], basis=basis),
+                      dtype=np.float64)
 
 
 _TEMPLATE_CACHE: dict = {}
 
 
-def load_template(template_file: str, template_key: str):
-    """The prepared template and its spectrum, kept per process.
+def load_template(task: SubjectTask) -> tuple[Surface, np.ndarray]:
+    """The prepared template and its Laplace spectrum, computed once per process.
 
     Reusing one template object lets its cached eigenbasis serve every subject a
-    worker handles; the eigenbasis cache returns the same arrays for the same
-    sequence of requests, so results do not depend on which worker ran what.
+    worker handles; it is solved on first use, by the same request in every
+    process (:func:`shared_eigenbasis`), so results do not depend on which worker
+    ran what.
     """
-    from ..mesh.surface import Surface
-
-    if template_key not in _TEMPLATE_CACHE:
+    # the options decide the size of the template's eigenbasis, so they are part of the key
+    key = (task.template_key, json.dumps(task.options, sort_keys=True))
+    if key not in _TEMPLATE_CACHE:
         _TEMPLATE_CACHE.clear()
-        with np.load(template_file, allow_pickle=False) as data:
+        with np.load(task.template_file, allow_pickle=False) as data:
             template = Surface(data["vertices"], data["faces"])
-            spectrum = np.array(data["laplace_spectrum"])
-        _TEMPLATE_CACHE[template_key] = (template, spectrum)
-    return _TEMPLATE_CACHE[template_key]
+        spectrum = surface_spectrum(template, task.options, task.match_options)
+        _TEMPLATE_CACHE[key] = (template, spectrum)
+    return _TEMPLATE_CACHE[key]
 
 
 def one_line(exc: BaseException) -> str:
@@ -109,81 +127,87 @@ def one_line(exc: BaseException) -> str:
     return msg[:300]
 
 
-def _compute(task: SubjectTask, timings: dict):
-    import surfacekit as sk
-
-    opts = task.options
+@contextmanager
+def _timed(timings: dict, stage: str):
+    """Add the seconds spent inside the block to ``timings[stage]``."""
     tic = time.perf_counter()
-    raw = load_input_surface(task.path, task.label)
+    try:
+        yield
+    finally:
+        timings[stage] = timings.get(stage, 0.0) + time.perf_counter() - tic
+
+
+def _compare(template: Surface, subject: Surface, task: SubjectTask, timings: dict):
+    """Template -> subject correspondence and change through the one comparison pipeline."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AmbiguousMatchWarning)  # a table column instead
+        comparison = compare(template, subject, options=task.match_options,
+                             seed=task.options["seed"], timings=timings)
+    return comparison.correspondence, comparison.change
+
+
+def _compute(task: SubjectTask, timings: dict) -> tuple[Surface, dict, dict]:
+    with _timed(timings, "load"):
+        raw = load_input_surface(task.path, task.label)
     n_input = raw.n_vertices
-    timings["load"] = time.perf_counter() - tic
-
-    tic = time.perf_counter()
-    subject = prepare_surface(raw, opts)
+    with _timed(timings, "prepare"):
+        subject = prepare_surface(raw, task.options)
     del raw
-    timings["prepare"] = time.perf_counter() - tic
+    with _timed(timings, "descriptors"):
+        template, template_spectrum = load_template(task)
+        spectrum = surface_spectrum(subject, task.options, task.match_options)
+        distance = float(spectrum_distance(template_spectrum, spectrum,
+                                           k=task.options["n_eigenvalues"]))
+    corr, change = _compare(template, subject, task, timings)
+    fields = subject_fields(template, corr, change, spectrum)
+    scalars = subject_scalars(subject, corr, change, fields)
+    scalars.update(n_vertices_input=int(n_input), spectral_distance=distance)
+    return subject, fields, scalars
 
-    template, template_spectrum = load_template(task.template_file, task.template_key)
-    tic = time.perf_counter()
-    spectrum = subject_spectrum(subject, opts)
-    spectral_distance = float(sk.spectrum_distance(template_spectrum, spectrum, k=opts["n_eigenvalues"]))
-    timings["descriptors"] = time.perf_counter() - tic
 
-    tic = time.perf_counter()
-    with warnings.catch_warnings():  # recorded in the table instead of printed per subject
-        warnings.simplefilter("ignore", sk.AmbiguousMatchWarning)
-        corr = sk.match(template, subject, seed=opts["seed"])
-    probe = corr.info.get("rotation_ambiguity") or {}
-    timings["match"] = time.perf_counter() - tic
-
-    tic = time.perf_counter()
-    rep = sk.measure_change(template, subject, corr=corr, seed=opts["seed"])
-    timings["change"] = time.perf_counter() - tic
-
-    nd = np.asarray(rep.normal_displacement, dtype=np.float64)
-    lar = np.asarray(rep.log_area_ratio, dtype=np.float64)
+def subject_fields(template: Surface, corr, change, spectrum: np.ndarray) -> dict:
+    """Per-template-vertex arrays of one subject (stored exactly in ``fields.npz``)."""
     fields = {
-        "normal_displacement": nd,                                   # (n_template,) mm, + outward
-        "log_area_ratio": lar,                                       # (n_template,)
-        "displacement": np.asarray(rep.displacement, np.float64),    # (n_template, 3) mm
-        "target_vertex": np.asarray(corr.source_to_target, np.int64),  # subject vertex per template vertex
-        "laplace_spectrum": spectrum,                                            # (k,) dimensionless
+        "normal_displacement": np.asarray(change.normal_displacement, np.float64),  # (n,) mm, + out
+        "log_area_ratio": np.asarray(change.log_area_ratio, np.float64),           # (n,)
+        "displacement": np.asarray(change.displacement, np.float64),               # (n, 3) mm
+        "target_vertex": np.asarray(corr.source_to_target, np.int64),  # (n,) matched subject vertex
+        "laplace_spectrum": spectrum,                                  # (k,) dimensionless
     }
     if corr.confidence is not None:
         fields["match_confidence"] = np.asarray(corr.source_confidence
                                                 if corr.source_confidence is not None
                                                 else np.full(template.n_vertices, np.nan))
-    abs_nd = np.abs(nd)
-    scalars = {
-        "n_vertices_input": int(n_input),
+    return fields
+
+
+def subject_scalars(subject: Surface, corr, change, fields: dict) -> dict:
+    """The subject's row of ``cohort_summary.csv`` (without input size and spectral distance)."""
+    probe = corr.info.get("rotation_ambiguity") or {}
+    metrics = change.metrics()
+    return {
         "n_vertices": int(subject.n_vertices),
         "volume_ml": float(subject.volume) / 1000.0,
         "area_mm2": float(subject.area),
-        "volume_change_ml": float(rep.volume_change_ml),
-        "mean_abs_normal_displacement_mm": float(abs_nd.mean()),
-        "max_abs_normal_displacement_mm": float(abs_nd.max()),
-        "mean_log_area_ratio": float(lar.mean()),
-        "spectral_distance": spectral_distance,
+        "volume_change_ml": float(change.volume_change_ml),
+        **{name: metrics[name] for name in CHANGE_COLUMNS},
         "mean_match_confidence": (float(np.mean(fields["match_confidence"]))
                                   if "match_confidence" in fields else None),
-        # 1: the shapes barely fix a turn of the map (sk.AmbiguousMatchWarning); check this subject
+        # 1: the shapes barely fix a turn of the map (AmbiguousMatchWarning); check this subject
         "match_turn_ambiguous": int(bool(probe.get("ambiguous"))) if probe else None,
     }
-    return subject, fields, scalars
 
 
-def write_subject(task: SubjectTask, subject, fields: dict, scalars: dict, timings: dict) -> None:
+def write_subject(task: SubjectTask, subject: Surface, fields: dict, scalars: dict) -> None:
     """Write fields (NPZ, exact), the prepared mesh and the fields on the template (PLY),
     the row and, last, the completion marker."""
-    import surfacekit as sk
-
     out = Path(task.subject_dir)
-    save_npz_deterministic(out / "fields.npz", fields)
-    sk.save(subject, out / "prepared.ply")
-    template = load_template(task.template_file, task.template_key)[0]
+    save_fields(out / "fields.npz", **fields)
+    save(subject, out / "prepared.ply")
+    template = load_template(task)[0]
     # the change fields as vertex properties of the template mesh, for viewers
-    sk.save(template, out / "on_template.ply",
-            fields={k: fields[k] for k in ("normal_displacement", "log_area_ratio")})
+    save(template, out / "on_template.ply",
+         fields={k: fields[k] for k in ("normal_displacement", "log_area_ratio")})
     write_json(out / "row.json", {"subject": task.subject, "key": task.key, "values": scalars})
     with atomic_path(out / f"{task.key}{MARKER_SUFFIX}", suffix=MARKER_SUFFIX) as tmp:
         tmp.write_text(task.key + "\n")
@@ -229,8 +253,6 @@ def worker_info() -> dict:
 
 def run_subject(task: SubjectTask) -> dict:
     """Compute and store one subject; never raises: failures come back as rows."""
-    from threadpoolctl import threadpool_limits
-
     out = Path(task.subject_dir)
     timings = {s: 0.0 for s in STAGES}
     row = {"index": task.index, "subject": task.subject, "key": task.key, "cached": False}
@@ -241,9 +263,8 @@ def run_subject(task: SubjectTask) -> dict:
             stale.unlink()
         with threadpool_limits(limits=1):
             subject, fields, scalars = _compute(task, timings)
-            tic = time.perf_counter()
-            write_subject(task, subject, fields, scalars, timings)
-            timings["write"] = time.perf_counter() - tic
+            with _timed(timings, "write"):
+                write_subject(task, subject, fields, scalars)
         row.update(status="ok", error="", values=scalars)
         (out / "error.txt").unlink(missing_ok=True)
         del subject, fields

@@ -1,7 +1,8 @@
 """Cohort tables written after the per-subject work, always in manifest order.
 
 ``cohort_summary.csv``  one row per subject: manifest columns, status, one-line
-                        error, and the subject's scalars (fixed ``%.6g`` text).
+                        error, and the subject's scalars (``%.6g`` text of
+                        :func:`surfacekit.io.tables.format_value`).
 ``cohort_fields.npz``   per-template-vertex matrices (subjects x template vertices),
                         NaN rows for failed subjects, streamed row by row to disk.
 ``group_test.csv``      vertex-wise two-group test of the normal displacement
@@ -9,45 +10,42 @@
 """
 from __future__ import annotations
 
-import csv
-import io
 import zipfile
 from pathlib import Path
 
 import numpy as np
 
-from .manifest import Manifest, format_value
-from ..io.files import atomic_path, npz_member
+from ..analysis.stats import vertexwise_group_test
+from ..io.files import atomic_path
+from ..io.npz import npz_member
+from ..io.tables import write_csv
+from .manifest import Manifest
+from .subject import CHANGE_COLUMNS
 
 SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "volume_change_ml",
-                  "mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
-                  "mean_log_area_ratio", "spectral_distance", "mean_match_confidence",
+                  *CHANGE_COLUMNS, "spectral_distance", "mean_match_confidence",
                   "match_turn_ambiguous")
+RESULT_COLUMNS = ("subject", "group", "label", "status", "error", *SCALAR_COLUMNS)
 VERTEX_FIELDS = ("normal_displacement", "log_area_ratio")
 
 
-def _write_csv(path: Path, header: list[str], rows: list[list[str]]) -> Path:
-    buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(header)
-    writer.writerows(rows)
-    with atomic_path(path, suffix=".csv") as tmp:
-        tmp.write_text(buf.getvalue(), encoding="utf-8")
-    return path
+def check_covariate_names(manifest: Manifest) -> None:
+    """Refuse extra manifest columns named like a column the cohort table computes."""
+    clash = sorted(set(manifest.covariate_names) & set(RESULT_COLUMNS))
+    if clash:
+        raise ValueError(f"manifest {manifest.path.name}: column(s) {', '.join(clash)} clash with "
+                         "the cohort table's own columns; rename them")
 
 
 def write_summary(path, manifest: Manifest, rows: list[dict]) -> Path:
     """``cohort_summary.csv``: subject, group, label, covariates, status, error, scalars."""
     header = ["subject", "group", "label", *manifest.covariate_names, "status", "error",
               *SCALAR_COLUMNS]
-    lines = []
-    for entry, row in zip(manifest.subjects, rows):
-        values = row.get("values") or {}
-        lines.append([entry.subject, entry.group, format_value(entry.label),
-                      *(entry.covariates.get(c, "") for c in manifest.covariate_names),
-                      row["status"], row.get("error", ""),
-                      *(format_value(values.get(c)) for c in SCALAR_COLUMNS)])
-    return _write_csv(Path(path), header, lines)
+    table = [{**entry.covariates, **(row.get("values") or {}), "subject": entry.subject,
+              "group": entry.group, "label": entry.label, "status": row["status"],
+              "error": row.get("error", "")}
+             for entry, row in zip(manifest.subjects, rows)]
+    return write_csv(path, table, columns=header)
 
 
 def write_fields_matrix(path, manifest: Manifest, rows: list[dict], subject_dirs: list[Path],
@@ -127,14 +125,12 @@ def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
                      *, n_permutations: int, seed: int) -> Path | None:
     """``group_test.csv``: per template vertex, group means, t, p-values and FDR q-values.
 
-    Runs :func:`surfacekit.vertexwise_group_test` (permutation max-T, Nichols &
+    Runs :func:`~surfacekit.analysis.stats.vertexwise_group_test` (permutation max-T, Nichols &
     Holmes 2002; FDR, Benjamini & Hochberg 1995) on the normal displacement (mm),
     adjusted for the manifest covariates usable as numbers (see
     :func:`covariate_matrix`); if they make the design rank deficient the test
     runs without them.  Returns None (and writes nothing) without exactly two groups.
     """
-    import surfacekit as sk
-
     pair = two_groups(manifest, rows)
     if pair is None:
         return None
@@ -146,17 +142,16 @@ def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
                + [e for e, m in zip(manifest.subjects, in_b) if m])
     cov, _used = covariate_matrix(entries)
     try:
-        res = sk.vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed,
+        res = vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed,
                                        covariates=cov)
     except ValueError:
         if cov is None:
             raise
-        res = sk.vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed)
+        res = vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed)
     columns = [a.mean(axis=0), b.mean(axis=0)] + [
         np.asarray(getattr(res, name), dtype=np.float64)
         for name in ("t", "p_uncorrected", "p_fwer", "q_fdr")]
     header = ["vertex", f"mean_{pair[0]}_mm", f"mean_{pair[1]}_mm", "t", "p_uncorrected",
               "p_fwer", "q_fdr"]
-    lines = [[str(i), *(format_value(float(v)) for v in vals)]
-             for i, vals in enumerate(zip(*columns))]
-    return _write_csv(Path(path), header, lines)
+    table = [dict(zip(header, (i, *vals))) for i, vals in enumerate(zip(*columns))]
+    return write_csv(path, table, columns=header)

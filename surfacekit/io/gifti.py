@@ -1,5 +1,6 @@
 """GIFTI surfaces (``.gii``, read and written through nibabel) in the GIFTI Surface Data Format
-1.0: a NIFTI_INTENT_POINTSET and a NIFTI_INTENT_TRIANGLE array; other per-vertex arrays are fields."""
+1.0: a NIFTI_INTENT_POINTSET and a NIFTI_INTENT_TRIANGLE array; other per-vertex arrays are
+fields."""
 from __future__ import annotations
 
 import io
