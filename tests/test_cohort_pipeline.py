@@ -74,6 +74,7 @@ def test_each_surface_solves_one_eigenproblem(tiny_cohort, tmp_path, monkeypatch
     assert again.n_cached == 3 and calls == []
 
 
+@pytest.mark.slow
 def test_table_metric_is_the_change_summary_metric(tiny_cohort, tmp_path):
     """The cohort row of a subject holds the change summary's own (area-weighted) values."""
     out = tmp_path / "out"
@@ -100,6 +101,7 @@ def test_table_metric_is_the_change_summary_metric(tiny_cohort, tmp_path):
     assert abs(weighted - np.abs(nd).mean()) > 1e-6 * weighted
 
 
+@pytest.mark.slow
 def test_match_options_reach_the_worker_and_the_cache_key(tiny_cohort, tmp_path, monkeypatch):
     """Changed MatchOptions recompute every subject, reach each comparison, and are recorded;
     the template kept in this process is solved again for the new basis size, as a fresh
