@@ -113,7 +113,9 @@ def pose_sweep(n_vertices: int, n_poses: int) -> None:
 
 def intrinsic_route(pairs) -> None:
     """Error of the descriptor-only (intrinsic) candidate, refined, with and without patch descriptors."""
-    from surfacekit.correspondence import solver as S
+    from surfacekit.correspondence.candidates import intrinsic_start, refine
+    from surfacekit.correspondence.shapes import prepare_shape
+    from surfacekit.correspondence.solver import extend, zoomout_sizes
 
     print("\nintrinsic route alone (functional map from descriptors, then ZoomOut), per pair:")
     res = {False: [], True: []}
@@ -121,14 +123,13 @@ def intrinsic_route(pairs) -> None:
         line = f"  {pair.name:32s}"
         for patches in (False, True):
             opts = sk.MatchOptions(patch_descriptors=patches)
-            src = S._prepare(fresh(pair.source), opts, 0, 0)
-            tgt = S._prepare(fresh(pair.target), opts, 1, 1)
+            src = prepare_shape(fresh(pair.source), opts, 0, 0)
+            tgt = prepare_shape(fresh(pair.target), opts, 1, 1)
             t0 = time.perf_counter()
-            cand = S._intrinsic_start(src, tgt, opts)
-            mid, step = opts.zoomout_mid, opts.zoomout_step  # the solver's coarse and fine steps
-            cand = S._stage(src, tgt, cand, range(opts.zoomout_start, mid + 1, step), opts)
-            cand = S._stage(src, tgt, cand, range(mid + step, opts.n_eigen + 1, step), opts)
-            s2t = S._extend(src, tgt, cand, opts)[1]
+            cand = intrinsic_start(src, tgt, opts)
+            for ks in zoomout_sizes(opts):  # the solver's coarse and fine steps
+                cand = refine(src, tgt, cand, ks, opts)
+            s2t = extend(src, tgt, cand, opts)[1]
             res[patches].append(score(pair, s2t).mean())
             line += f"  {'with' if patches else 'without'} patches: {res[patches][-1]:.4f} " \
                     f"({time.perf_counter() - t0:.1f}s)"

@@ -18,10 +18,10 @@ logging.getLogger("surfacekit").addHandler(logging.NullHandler())
 # public name -> module that defines it (relative to this package), in pipeline order
 _LAZY = {
     # mesh: the surface, its operators, geodesics and descriptors
-    "laplacian": "mesh.operators", "eigenbasis": "mesh.operators", "Eigenbasis": "mesh.operators",
-    "gradient": "mesh.operators", "divergence": "mesh.operators", "mass_matrix": "mesh.operators",
-    "cotangent_laplacian": "mesh.operators", "point_cloud_laplacian": "mesh.operators",
-    "EigenSolverWarning": "mesh.operators",
+    "laplacian": "mesh.laplacian", "eigenbasis": "mesh.eigen", "Eigenbasis": "mesh.eigen",
+    "gradient": "mesh.laplacian", "divergence": "mesh.laplacian", "mass_matrix": "mesh.laplacian",
+    "cotangent_laplacian": "mesh.laplacian", "point_cloud_laplacian": "mesh.laplacian",
+    "EigenSolverWarning": "mesh.eigen",
     "heat_kernel_signature": "mesh.descriptors", "scale_invariant_hks": "mesh.descriptors",
     "wave_kernel_signature": "mesh.descriptors", "laplace_spectrum": "mesh.descriptors",
     "spectrum_distance": "mesh.descriptors", "mean_curvature": "mesh.descriptors",
@@ -40,8 +40,8 @@ _LAZY = {
     "MatchOptions": "correspondence", "map_quality": "correspondence",
     "geodesic_error": "correspondence", "AmbiguousMatchWarning": "correspondence",
     "load_landmarks": "correspondence", "save_landmarks": "correspondence",
+    "rigid_transform": "correspondence", "similarity_transform": "correspondence",
     # analysis
-    "rigid_transform": "analysis", "similarity_transform": "analysis",
     "measure_change": "analysis", "ChangeReport": "analysis",
     "compare": "analysis", "Comparison": "analysis",
     "transfer_labels": "analysis", "generalized_procrustes": "analysis",
@@ -58,7 +58,7 @@ _LAZY = {
 _SUBMODULES = {
     "mesh": "mesh", "io": "io", "preparation": "preparation", "correspondence": "correspondence",
     "analysis": "analysis", "cohort": "cohort", "app": "app",
-    "synthetic": "mesh.synthetic", "operators": "mesh.operators",
+    "synthetic": "mesh.synthetic", "operators": "mesh.laplacian",
     "descriptors": "mesh.descriptors", "geodesics": "mesh.geodesics",
     "segmentation": "preparation.segmentation", "batch": "cohort", "report": "app.report",
     "cli": "app.cli",

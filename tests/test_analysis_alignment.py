@@ -1,4 +1,4 @@
-"""Rigid and similarity alignment (surfacekit.analysis.alignment).
+"""Rigid and similarity alignment (surfacekit.correspondence.alignment).
 
 Outside references: scipy.spatial.transform.Rotation.align_vectors (weighted
 Kabsch, SciPy) and scipy.spatial.procrustes (similarity Procrustes, SciPy).
@@ -83,6 +83,30 @@ def test_surfaces_with_correspondence_and_confidence():
     corr = sk.Correspondence(ident, ident, source_confidence=np.linspace(0, 1, s.n_vertices))
     T = sk.rigid_transform(s, moved, corr)
     np.testing.assert_allclose(T.rotation, R, atol=1e-9)
+
+
+def test_surfaces_without_correspondence_are_refused():
+    """No hidden matching: surfaces need the correspondence that pairs them."""
+    s, _ = sk.synthetic.organ_surface("kidney", 300, seed=0)
+    with pytest.raises(ValueError, match="correspondence"):
+        sk.rigid_transform(s, s)
+    with pytest.raises(ValueError, match="correspondence"):
+        sk.similarity_transform(s, s)
+
+
+def test_weighted_umeyama_is_the_solver_kabsch():
+    """One least-squares fit: the public wrapper returns the solver's Kabsch bit for bit."""
+    from surfacekit.correspondence.alignment import kabsch
+
+    x = _points(40, seed=2)
+    y = 1.3 * x @ sk.synthetic.random_rotation(3).T + 2.0
+    w = np.linspace(0.5, 1.5, 40)
+    for scaling in (False, True):
+        ours = sk.analysis.weighted_umeyama(x, y, w, scaling=scaling)
+        ref = kabsch(x, y, w, scaling=scaling)
+        assert all(np.array_equal(a, b) for a, b in zip(ours, ref))
+    with pytest.raises(ValueError, match="all zero"):
+        sk.analysis.weighted_umeyama(x, y, np.zeros(40))
 
 
 def test_bad_input_messages():

@@ -5,23 +5,7 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from . import extrinsic as ex
-
-#: misfit ratio below which a turned pose is called undetermined by the shape.  Measured on
-#: the benchmark organs (benchmarks/bench_match.py): 0.90-1.10 on the synthetic ventricle
-#: (round cross-section), 1.37-2.2 on the kidney, liver and hippocampus.
-AMBIGUOUS_BELOW = 1.2
-#: misfit ratio below which the solver adopts the turned pose and refines again: a turn that
-#: fits clearly better means the pose search stopped in a local minimum (seen on organs grown
-#: anisotropically, whose stretched shape pulls the rigid fit 20-30 degrees off).
-TURN_BELOW = 0.8
-#: a turn is only tried while the affine misfit exceeds this multiple of the smooth non-rigid
-#: fit's misfit.  Measured: 2.5-3.7 on the benchmark pairs whose turn fixed the map, 1.35 on an
-#: exactly remeshed ellipsoid, where affine fits in every pose are equally good.
-ROOM_ABOVE = 2.0
-#: energy ratio within which a finalist turned by more than 25 degrees (usually a 180-degree
-#: flip) counts as an equally good rival.  Measured on the benchmark pairs: 1.007-1.044 on the
-#: ventricle pairs where flip and truth tie, 1.07-2.6 where the chosen map is right.
-RIVAL_WITHIN = 1.05
+from . import tuning
 
 
 class AmbiguousMatchWarning(UserWarning):
@@ -31,12 +15,13 @@ class AmbiguousMatchWarning(UserWarning):
 def _affine_misfit(moved: np.ndarray, tgt_samples: np.ndarray, tgt_tree, tgt_points: np.ndarray,
                    tgt_normals: np.ndarray) -> float:
     """Mean point-to-plane distance after affine ICP of `moved` onto the target."""
-    A, b = ex.affine_icp(moved, tgt_samples, iterations=6)
+    A, b = ex.affine_icp(moved, tgt_samples, iterations=tuning.PROBE_AFFINE_ITERATIONS)
     return float(np.mean(ex.plane_distances(moved @ A.T + b, tgt_tree, tgt_points, tgt_normals)))
 
 
 def rotation_ambiguity(moved: np.ndarray, tgt_samples: np.ndarray, tgt_tree, tgt_points: np.ndarray,
-                       tgt_normals: np.ndarray, tgt_weights: np.ndarray, *, angle_deg: float = 30.0) -> dict:
+                       tgt_normals: np.ndarray, tgt_weights: np.ndarray, *,
+                       angle_deg: float = tuning.PROBE_ANGLE_DEG) -> dict:
     """How much worse the best affine fit gets when the chosen pose is turned by ±`angle_deg`.
 
     The aligned source samples `moved` (p, 3) are rotated about each principal

@@ -7,6 +7,8 @@ import numpy as np
 from scipy.spatial import cKDTree
 
 from ..mesh.surface import Surface
+from . import tuning
+from .alignment import Transform, kabsch
 
 
 def normalized_coordinates(s: Surface) -> tuple[np.ndarray, np.ndarray, float]:
@@ -71,38 +73,17 @@ def candidate_rotations(src: np.ndarray, src_w: np.ndarray, tgt: np.ndarray, tgt
     of the cube between the two principal frames: all sign choices and, for
     near-equal axes, all orderings); reflections are excluded because they would
     give mirror maps.  The identity is added unless ``same_orientation`` is False;
-    with ``same_orientation=True`` only rotations within 60 degrees of the identity
-    are kept (scans share the scanner's orientation).
+    with ``same_orientation=True`` only rotations within
+    ``tuning.SAME_ORIENTATION_DEG`` of the identity are kept (scans share the
+    scanner's orientation).
     """
     Es, Et = principal_frame(src, src_w), principal_frame(tgt, tgt_w)
     cands = [Et @ P @ Es.T for P in proper_signed_permutations()]
     if same_orientation is not False:
         cands.insert(0, np.eye(3))
     if same_orientation:
-        cands = [R for R in cands if rotation_angle(R) <= np.deg2rad(60.0)]
+        cands = [R for R in cands if rotation_angle(R) <= np.deg2rad(tuning.SAME_ORIENTATION_DEG)]
     return np.array(cands)
-
-
-def kabsch(a: np.ndarray, b: np.ndarray, w: np.ndarray | None = None,
-           scaling: bool = False) -> tuple[np.ndarray, np.ndarray, float]:
-    """Least-squares rotation R, translation t (and scale) with ``s R a + t ≈ b``.
-
-    Kabsch (Acta Cryst. A 1976); with ``scaling`` the similarity of Umeyama (IEEE
-    TPAMI 1991).  a, b (n, 3); w (n,) optional weights.  Returns ``(R (3,3), t (3,), s)``;
-    proper rotations only (det +1).
-    """
-    w = np.ones(len(a)) if w is None else np.asarray(w, float)
-    w = w / w.sum()
-    ca, cb = w @ a, w @ b
-    A, B = a - ca, b - cb
-    H = (A * w[:, None]).T @ B
-    U, S, Vt = np.linalg.svd(H)
-    d = np.sign(np.linalg.det(Vt.T @ U.T)) or 1.0
-    D = np.diag([1.0, 1.0, d])
-    R = Vt.T @ D @ U.T
-    s = float(np.trace(np.diag(S) @ D) / max(w @ np.sum(A * A, axis=1), 1e-300)) if scaling else 1.0
-    t = cb - s * R @ ca
-    return R, t, s
 
 
 def anchor_rows(anchors, n_points: int) -> tuple[np.ndarray, np.ndarray, float]:
@@ -119,47 +100,48 @@ def anchor_rows(anchors, n_points: int) -> tuple[np.ndarray, np.ndarray, float]:
 
 
 def icp(src: np.ndarray, tgt: np.ndarray, R: np.ndarray, *, iterations: int = 15,
-        tgt_tree: cKDTree | None = None, scaling: bool = False, anchors=None):
+        tgt_tree: cKDTree | None = None, scaling: bool = False, anchors=None) -> tuple[Transform, float]:
     """Symmetric point-to-point ICP (Besl & McKay, IEEE TPAMI 1992) from an initial rotation.
 
     Closest points are taken in both directions each iteration, so that a partial
     overlap cannot shrink onto one end.  src (p, 3), tgt (q, 3) normalised
     points; `anchors` optional known pairs (see :func:`anchor_rows`) added to
-    every fit with their weight.  Returns ``(R, t, s, rms)`` with rms the
+    every fit with their weight.  Returns ``(pose, rms)``: the pose (a
+    :class:`Transform`, rigid or with ``scaling`` a similarity) and the
     symmetric root-mean-square closest-point distance after the last step (same
     units as the points).
     """
     tree_t = tgt_tree if tgt_tree is not None else cKDTree(tgt)
     ia, pa, wa = anchor_rows(anchors, len(src) + len(tgt))
     w = np.concatenate([np.ones(len(src) + len(tgt)), np.full(len(ia), wa)])
-    t = np.zeros(3)
-    s = 1.0
+    pose = Transform(R, np.zeros(3), 1.0)
     rms = np.inf
     for _ in range(iterations):
-        moved = s * src @ R.T + t
+        moved = pose.apply(src)
         d_st, j = tree_t.query(moved)
         d_ts, i = cKDTree(moved).query(tgt)
         a = np.concatenate([src, src[i], src[ia]])
         b = np.concatenate([tgt[j], tgt, pa])
-        R, t, s = kabsch(a, b, w, scaling=scaling)
+        pose = Transform(*kabsch(a, b, w, scaling=scaling))
         new = np.sqrt(0.5 * (np.mean(d_st**2) + np.mean(d_ts**2)))
-        if abs(rms - new) < 1e-6:
+        if abs(rms - new) < tuning.ICP_TOLERANCE:
             rms = new
             break
         rms = new
-    moved = s * src @ R.T + t
+    moved = pose.apply(src)
     d_st, _ = tree_t.query(moved)
     d_ts, _ = cKDTree(moved).query(tgt)
     rms = float(np.sqrt(0.5 * (np.mean(d_st**2) + np.mean(d_ts**2))))
-    return R, t, s, rms
+    return pose, rms
 
 
-def distinct_poses(poses: list, scores: np.ndarray, n_keep: int, min_angle_deg: float = 25.0) -> list:
+def distinct_poses(poses: list[Transform], scores: np.ndarray, n_keep: int,
+                   min_angle_deg: float = tuning.DISTINCT_POSE_DEG) -> list[int]:
     """Indices of the best-scoring poses, skipping any within `min_angle_deg` of a kept one."""
     keep: list[int] = []
     for idx in np.argsort(scores):
-        R = poses[idx][0]
-        if all(rotation_angle(R @ poses[k][0].T) > np.deg2rad(min_angle_deg) for k in keep):
+        R = poses[idx].rotation
+        if all(rotation_angle(R @ poses[k].rotation.T) > np.deg2rad(min_angle_deg) for k in keep):
             keep.append(int(idx))
         if len(keep) >= n_keep:
             break
@@ -167,10 +149,10 @@ def distinct_poses(poses: list, scores: np.ndarray, n_keep: int, min_angle_deg: 
 
 
 def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndarray, tgt: np.ndarray,
-                          *, sizes=(3, 6, 10, 16, 24), iterations: int = 4,
-                          stiffness: float = 1e-3, tgt_tree: cKDTree | None = None,
+                          *, sizes=tuning.DEFORM_SIZES[:5], iterations: int = tuning.DEFORM_ITERATIONS,
+                          stiffness: float = tuning.DEFORM_STIFFNESS, tgt_tree: cKDTree | None = None,
                           anchors=None, tgt_normals: np.ndarray | None = None,
-                          slide: float = 0.02) -> np.ndarray:
+                          slide: float = tuning.DEFORM_SLIDE) -> np.ndarray:
     """Smooth non-rigid ICP: a displacement field in the low Laplace–Beltrami eigenfunctions.
 
     Closest points in both directions (as in :func:`icp`) define where each point
@@ -223,7 +205,7 @@ def spectral_nonrigid_icp(points: np.ndarray, basis: np.ndarray, values: np.ndar
     return A
 
 
-def affine_icp(src: np.ndarray, tgt: np.ndarray, *, iterations: int = 10,
+def affine_icp(src: np.ndarray, tgt: np.ndarray, *, iterations: int = tuning.AFFINE_ICP_ITERATIONS,
                tgt_tree: cKDTree | None = None, anchors=None) -> tuple[np.ndarray, np.ndarray]:
     """Affine ICP from the identity: ``src @ A.T + b`` fitted to symmetric closest points.
 

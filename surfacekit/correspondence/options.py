@@ -1,10 +1,10 @@
 """Options of :func:`surfacekit.match`."""
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, fields
 
 
-@dataclass
+@dataclass(frozen=True)
 class MatchOptions:
     """Settings of the correspondence solver; the defaults suit organ surfaces of 1k–50k vertices.
 
@@ -55,8 +55,9 @@ class MatchOptions:
     scaling : bool, default False
         Let the rigid pre-alignment also rescale (a similarity, Umeyama 1991) beyond
         the normalisation of both shapes to a common RMS radius.
-    landmarks : tuple of (source_vertex, target_vertex) pairs, default ()
-        Known corresponding vertices (e.g. placed by an expert, or exported by
+    landmarks : tuple of (source_vertex, target_vertex) int pairs, default ()
+        Any (l, 2) sequence or array is accepted and stored as a tuple of int
+        pairs.  Known corresponding vertices (e.g. placed by an expert, or exported by
         :meth:`Correspondence.landmarks`).  They are used everywhere: with at least
         3, their Kabsch pose is tried first; they anchor every rigid, affine and
         smooth non-rigid fit (weight `landmark_weight`); heat kernels centred at
@@ -98,6 +99,15 @@ class MatchOptions:
     check_ambiguity: bool = True
     max_turns: int = 3
 
+    def __post_init__(self):
+        # frozen: normalise the landmark pairs once, so the options hash, compare and save alike
+        try:
+            pairs = tuple((int(a), int(b)) for a, b in self.landmarks)
+        except (TypeError, ValueError):
+            raise ValueError("landmarks must be (source_vertex, target_vertex) pairs of integers, "
+                             f"got {self.landmarks!r}") from None
+        object.__setattr__(self, "landmarks", pairs)
+
     def validate(self) -> MatchOptions:
         if self.n_eigen < 4:
             raise ValueError(f"n_eigen must be >= 4, got {self.n_eigen}")
@@ -119,9 +129,21 @@ class MatchOptions:
             raise ValueError(f"landmark_weight must be >= 0, got {self.landmark_weight}")
         if self.same_orientation not in (None, True, False):
             raise ValueError(f"same_orientation must be None, True or False, got {self.same_orientation!r}")
+        if any(a < 0 or b < 0 for a, b in self.landmarks):
+            raise ValueError("landmarks must be non-negative vertex indices")
         return self
 
     def to_dict(self) -> dict:
+        """JSON-able dict of all settings (landmarks as lists of two ints)."""
         d = asdict(self)
-        d["landmarks"] = [list(map(int, p)) for p in self.landmarks]
+        d["landmarks"] = [list(p) for p in self.landmarks]
         return d
+
+    @classmethod
+    def from_dict(cls, d: dict) -> MatchOptions:
+        """Options from :meth:`to_dict` output; unknown keys raise ValueError, missing ones keep defaults."""
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - names)
+        if unknown:
+            raise ValueError(f"unknown MatchOptions settings: {unknown}")
+        return cls(**d)

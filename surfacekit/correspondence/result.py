@@ -11,7 +11,9 @@ import numpy as np
 from ..io.files import atomic_path, save_fields
 from ..io.tables import json_default
 from ..mesh.surface import Surface
+from .alignment import Transform
 from .labels import vote_labels
+from .options import MatchOptions
 
 _FORMAT_TAG = "surfacekit.correspondence/1"
 
@@ -34,6 +36,40 @@ def _check_confidence(name: str, c, n: int) -> np.ndarray | None:
     return np.clip(c, 0.0, 1.0)
 
 
+def _check_transform(name: str, t) -> Transform | None:
+    if t is not None and not isinstance(t, Transform):
+        raise ValueError(f"{name} must be a Transform or None, got {type(t).__name__}")
+    return t
+
+
+def _check_array(name: str, a, shape: tuple) -> np.ndarray | None:
+    if a is None:
+        return None
+    a = np.asarray(a, dtype=np.float64)
+    if a.shape != shape:
+        raise ValueError(f"{name} must have shape {shape}, got {a.shape}")
+    return a
+
+
+def _transform_arrays(name: str, t: Transform | None) -> dict:
+    """NPZ entries of a Transform, each under ``<name>_<field>``."""
+    if t is None:
+        return {}
+    out = {f"{name}_rotation": t.rotation, f"{name}_translation": t.translation,
+           f"{name}_scale": np.float64(t.scale), f"{name}_rms": np.float64(t.rms),
+           f"{name}_n_iter": np.int64(t.n_iter)}
+    if t.weights is not None:
+        out[f"{name}_weights"] = t.weights
+    return out
+
+
+def _transform_from(name: str, d: dict) -> Transform | None:
+    if f"{name}_rotation" not in d:
+        return None  # written before transforms were kept
+    return Transform(d[f"{name}_rotation"], d[f"{name}_translation"], float(d[f"{name}_scale"]),
+                     d.get(f"{name}_weights"), float(d[f"{name}_rms"]), int(d[f"{name}_n_iter"]))
+
+
 @dataclass
 class Correspondence:
     """Dense correspondence between a source and a target surface.
@@ -51,8 +87,33 @@ class Correspondence:
         Per target vertex; 1 = the match is consistent both ways.
     source_confidence : (n_source,) in [0, 1] or None
         Per source vertex.
+    similarity : Transform or None
+        The solver's chosen pose, source -> target in mm: rotation, translation
+        and the scale between the two shapes' sizes (not 1 even without
+        ``MatchOptions.scaling``, since the solver works on shapes normalised to
+        unit size).
+    affine : (4, 4) or None
+        That pose followed by the solver's affine fit, source -> target in mm
+        (homogeneous matrix acting on column vectors).
+    deformation : (n_source, 3) mm or None
+        Smooth non-rigid displacement per source vertex: ``affine`` applied to
+        source vertex i, plus ``deformation[i]``, is where the solver's smooth
+        deformation (low Laplace–Beltrami eigenfunctions) puts it on the target.
+    rigid : Transform or None
+        The rigid pose (scale 1) of the final map, source -> target in mm, robust
+        to a changing region (confidence-weighted, Tukey-reweighted Kabsch fit
+        refined point-to-surface; see :func:`surfacekit.correspondence.pose.rigid_pose`).
+        ``rigid.weights`` are the final robust weights per source vertex, ``rigid.rms``
+        the residual (mm).  ``rigid.inverse()`` brings the target into the source frame.
+    options : MatchOptions or None
+        The options `match` ran with.
+    seed : int or None
+        The seed `match` ran with.
     info : dict
         JSON-able diagnostics (route chosen, energies, timings).
+
+    The transforms, options and seed are None for correspondences not made by
+    ``sk.match`` (and in files saved before they were kept).
 
     Examples
     --------
@@ -67,6 +128,12 @@ class Correspondence:
     functional_map: np.ndarray | None = None
     confidence: np.ndarray | None = None
     source_confidence: np.ndarray | None = None
+    similarity: Transform | None = None
+    affine: np.ndarray | None = None
+    deformation: np.ndarray | None = None
+    rigid: Transform | None = None
+    options: MatchOptions | None = None
+    seed: int | None = None
     info: dict = field(default_factory=dict)
 
     def __post_init__(self):
@@ -83,6 +150,15 @@ class Correspondence:
                 raise ValueError("functional_map must be a 2-D matrix")
         self.confidence = _check_confidence("confidence", self.confidence, n_t)
         self.source_confidence = _check_confidence("source_confidence", self.source_confidence, n_s)
+        self.similarity = _check_transform("similarity", self.similarity)
+        self.rigid = _check_transform("rigid", self.rigid)
+        self.affine = _check_array("affine", self.affine, (4, 4))
+        self.deformation = _check_array("deformation", self.deformation, (n_s, 3))
+        if isinstance(self.options, dict):
+            self.options = MatchOptions.from_dict(self.options)
+        if self.options is not None and not isinstance(self.options, MatchOptions):
+            raise ValueError(f"options must be a MatchOptions or None, got {type(self.options).__name__}")
+        self.seed = None if self.seed is None else int(self.seed)
         self.info = dict(self.info or {})
 
     @property
@@ -132,9 +208,15 @@ class Correspondence:
             "target_to_source": self.target_to_source,
             "info_json": np.array(json.dumps(self.info, default=json_default)),
         }
-        for name in ("functional_map", "confidence", "source_confidence"):
+        for name in ("functional_map", "confidence", "source_confidence", "affine", "deformation"):
             if getattr(self, name) is not None:
                 arrays[name] = getattr(self, name)
+        arrays.update(_transform_arrays("similarity", self.similarity))
+        arrays.update(_transform_arrays("rigid", self.rigid))
+        if self.options is not None:
+            arrays["options_json"] = np.array(json.dumps(self.options.to_dict()))
+        if self.seed is not None:
+            arrays["seed"] = np.int64(self.seed)
         return save_fields(path, **arrays)
 
     @classmethod
@@ -153,6 +235,12 @@ class Correspondence:
             functional_map=d.get("functional_map"),
             confidence=d.get("confidence"),
             source_confidence=d.get("source_confidence"),
+            similarity=_transform_from("similarity", d),
+            affine=d.get("affine"),
+            deformation=d.get("deformation"),
+            rigid=_transform_from("rigid", d),
+            options=json.loads(str(d["options_json"])) if "options_json" in d else None,
+            seed=int(d["seed"]) if "seed" in d else None,
             info=json.loads(str(d["info_json"])),
         )
 
@@ -181,7 +269,7 @@ class Correspondence:
         if conf is not None:
             good = pool[conf >= np.median(conf)]
             pool = good if len(good) >= n else pool
-        from .sampling import farthest_points
+        from ..mesh.sampling import farthest_points
 
         idx = pool[farthest_points(source.vertices[pool], n, seed=seed)]
         t_idx = self.source_to_target[idx]

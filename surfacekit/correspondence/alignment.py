@@ -1,8 +1,10 @@
-"""Rigid and similarity alignment of paired points, weighted and robust.
+"""Rigid and similarity alignment of paired points, weighted and robust; the `Transform` object.
 
-Used to remove pose from a correspondence before measuring change, and by
-generalised Procrustes analysis.  Convention: a transform maps *source* points
-onto *target* points, ``target ≈ scale * R @ source + t``.
+Used by the correspondence solver (candidate poses, ICP), to take the pose out
+of a correspondence before measuring change, and by generalised Procrustes
+analysis.  Convention: a transform maps *source* points onto *target* points,
+``target ≈ scale * R @ source + t``.  :func:`kabsch` is the one least-squares
+fit; every other fit here calls it.
 """
 from __future__ import annotations
 
@@ -13,7 +15,8 @@ import numpy as np
 from ..mesh.surface import Surface, SurfaceError
 
 #: Tukey biweight tuning constant giving 95% efficiency under Gaussian residuals
-#: (Beaton & Tukey, Technometrics 1974); residual scale from the MAD x 1.4826.
+#: (Beaton & Tukey, Technometrics 1974); residual scale from the MAD x 1.4826
+#: (the Gaussian consistency factor of the median absolute deviation, Hampel 1974).
 TUKEY_C = 4.685
 MAD_TO_SD = 1.4826
 
@@ -56,19 +59,51 @@ class Transform:
         return self.scale * p @ self.rotation.T + self.translation
 
     def inverse(self) -> Transform:
+        """The transform taking target points back onto the source (same weights and rms)."""
         r_inv = self.rotation.T
         return Transform(r_inv, -(r_inv @ self.translation) / self.scale, 1.0 / self.scale,
                          self.weights, self.rms, self.n_iter)
 
+    def then(self, other: Transform) -> Transform:
+        """The composition ``x -> other.apply(self.apply(x))`` (diagnostics taken from `other`)."""
+        return Transform(other.rotation @ self.rotation,
+                         other.scale * (other.rotation @ self.translation) + other.translation,
+                         other.scale * self.scale, other.weights, other.rms, other.n_iter)
+
+    def turned_about(self, turn: np.ndarray, centre: np.ndarray) -> Transform:
+        """This transform followed by the rotation `turn` (3, 3) about the point `centre` (3,)."""
+        return Transform(turn @ self.rotation, turn @ (self.translation - centre) + centre, self.scale)
+
+
+def kabsch(a: np.ndarray, b: np.ndarray, w: np.ndarray | None = None,
+           scaling: bool = False) -> tuple[np.ndarray, np.ndarray, float]:
+    """Least-squares rotation R, translation t (and scale) with ``s R a + t ≈ b``.
+
+    Minimises ``Σ w_i |b_i - (s R a_i + t)|²`` in closed form: the rotation from
+    the SVD of the weighted cross-covariance with a reflection guard (Kabsch,
+    Acta Cryst. A 1976); with ``scaling`` the similarity of Umeyama (IEEE TPAMI
+    1991), scale ``s = tr(D S) / σ²_a`` (ibid., eq. 42).  a, b (n, 3); w (n,)
+    optional non-negative weights.  Returns ``(R (3,3), t (3,), s)``; proper
+    rotations only (det +1).  This is the solver's formula: every fit in the
+    package goes through it, so the solver's numbers stay bit for bit the same.
+    """
+    w = np.ones(len(a)) if w is None else np.asarray(w, float)
+    w = w / w.sum()
+    ca, cb = w @ a, w @ b
+    A, B = a - ca, b - cb
+    H = (A * w[:, None]).T @ B
+    U, S, Vt = np.linalg.svd(H)
+    d = np.sign(np.linalg.det(Vt.T @ U.T)) or 1.0
+    D = np.diag([1.0, 1.0, d])
+    R = Vt.T @ D @ U.T
+    s = float(np.trace(np.diag(S) @ D) / max(w @ np.sum(A * A, axis=1), 1e-300)) if scaling else 1.0
+    t = cb - s * R @ ca
+    return R, t, s
+
 
 def weighted_umeyama(source: np.ndarray, target: np.ndarray, weights: np.ndarray | None = None,
                      *, scaling: bool = False) -> tuple[np.ndarray, np.ndarray, float]:
-    """Least-squares rotation, translation (and scale) between paired points.
-
-    Minimises ``Σ w_i |target_i - (s R source_i + t)|²`` in closed form: the
-    rotation from the SVD of the weighted cross-covariance with a reflection
-    guard (Kabsch, Acta Cryst. A 1976; Umeyama, IEEE TPAMI 1991), the scale
-    ``s = tr(D S) / σ²_source`` (Umeyama 1991, eq. 42).
+    """:func:`kabsch` (Kabsch 1976; Umeyama, IEEE TPAMI 1991) with its inputs checked.
 
     Parameters
     ----------
@@ -83,25 +118,11 @@ def weighted_umeyama(source: np.ndarray, target: np.ndarray, weights: np.ndarray
     x = np.asarray(source, dtype=np.float64)
     y = np.asarray(target, dtype=np.float64)
     w = np.ones(len(x)) if weights is None else np.asarray(weights, dtype=np.float64)
-    wsum = w.sum()
-    if not wsum > 0:
+    if not w.sum() > 0:
         raise ValueError("alignment weights are all zero")
-    w = w / wsum
-    mx, my = w @ x, w @ y
-    xc, yc = x - mx, y - my
-    cov = (yc * w[:, None]).T @ xc  # Σ_xy of Umeyama (target x source)
-    u, d, vt = np.linalg.svd(cov)
-    sign = np.ones(3)
-    if np.linalg.det(u) * np.linalg.det(vt) < 0:
-        sign[2] = -1.0  # reflection guard: nearest proper rotation
-    rot = (u * sign) @ vt
-    scale = 1.0
-    if scaling:
-        var_x = float(w @ np.einsum("ij,ij->i", xc, xc))
-        if var_x <= 0:
-            raise ValueError("source points are all identical; scale is undefined")
-        scale = float((d * sign).sum() / var_x)
-    return rot, my - scale * rot @ mx, scale
+    if scaling and np.all(x == x[0]):
+        raise ValueError("source points are all identical; scale is undefined")
+    return kabsch(x, y, w, scaling=scaling)
 
 
 def _paired_points(source, target, corr) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
@@ -110,9 +131,8 @@ def _paired_points(source, target, corr) -> tuple[np.ndarray, np.ndarray, np.nda
         if not (isinstance(source, Surface) and isinstance(target, Surface)):
             raise SurfaceError("source and target must both be Surfaces or both (n, 3) arrays")
         if corr is None:
-            from ..correspondence import match
-
-            corr = match(source, target)
+            raise ValueError("surfaces need the correspondence that pairs their vertices (corr=...); "
+                             "compute one with match(source, target) first")
         s2t = np.asarray(corr.source_to_target)
         if s2t.shape != (source.n_vertices,):
             raise SurfaceError(f"correspondence has {s2t.shape[0]} source entries for "
@@ -141,7 +161,7 @@ def _fit(source, target, corr, weights, robust, max_iter, tol, scaling) -> Trans
         w0 = w0 * np.clip(conf, 0.0, 1.0)
     if not w0.sum() > 0:
         w0 = np.ones(len(x))  # no usable confidence: fall back to uniform weights
-    rot, t, s = weighted_umeyama(x, y, w0, scaling=scaling)
+    rot, t, s = kabsch(x, y, w0, scaling=scaling)
     w = w0
     it = 0
     if robust:
@@ -157,7 +177,7 @@ def _fit(source, target, corr, weights, robust, max_iter, tol, scaling) -> Trans
             if w.sum() <= 0:
                 w = w0
                 break
-            rot_n, t_n, s_n = weighted_umeyama(x, y, w, scaling=scaling)
+            rot_n, t_n, s_n = kabsch(x, y, w, scaling=scaling)
             change = np.abs(rot_n - rot).max() + np.abs(t_n - t).max() / extent + abs(s_n - s)
             rot, t, s = rot_n, t_n, s_n
             if change < tol:
@@ -179,8 +199,8 @@ def rigid_transform(source, target, corr=None, *, weights: np.ndarray | None = N
     Parameters
     ----------
     source, target : (n, 3) paired point arrays (mm), or two `Surface` objects
-        paired by `corr` (``corr.source_to_target``); with surfaces and no `corr`,
-        `sk.match` computes one.  ``corr.source_confidence`` (when present)
+        paired by `corr` (``corr.source_to_target``, required with surfaces;
+        ValueError without it).  ``corr.source_confidence`` (when present)
         multiplies the weights.
     weights : (n,) non-negative per-pair weights (e.g. confidence), optional
     robust : downweight outlying pairs (default) or plain weighted least squares

@@ -1,0 +1,163 @@
+"""The transforms a Correspondence carries from `match` (surfacekit.correspondence.pose, .result).
+
+References: a known similarity motion applied to a surface (exact by construction);
+closest points on the target surface from trimesh.proximity.closest_point (trimesh);
+the rigid pose robust to a growing region as in change analysis (Kabsch, Acta Cryst.
+A 1976, with Tukey's biweight, Beaton & Tukey, Technometrics 1974).
+"""
+import dataclasses
+import warnings
+
+import numpy as np
+import pytest
+import trimesh
+
+import surfacekit as sk
+from surfacekit.correspondence.alignment import Transform
+from surfacekit.correspondence.pose import rigid_pose
+
+ROTATION = sk.synthetic.random_rotation(7)
+SHIFT = np.array([140.0, -60.0, 30.0])
+
+
+def _moved(surface, scale=1.0):
+    """`surface` under the similarity x -> scale R x + shift, vertices in a shuffled order."""
+    perm = np.random.default_rng(3).permutation(surface.n_vertices)
+    inv = np.empty_like(perm)
+    inv[perm] = np.arange(len(perm))
+    v = scale * surface.vertices @ ROTATION.T + SHIFT
+    return sk.Surface(v[perm], inv[surface.faces])
+
+
+@pytest.fixture(scope="module")
+def scaled_pair():
+    """Two triangulations of the same kidney; the target also turned, shifted and scaled by 1.15."""
+    source, _ = sk.synthetic.organ_surface("kidney", 1200, seed=11)
+    other, _ = sk.synthetic.organ_surface("kidney", 1400, seed=12)
+    target = _moved(other, scale=1.15)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sk.AmbiguousMatchWarning)
+        corr = sk.match(source, target, seed=4)
+    return source, target, corr
+
+
+def _surface_distance(points, surface):
+    """Mean distance (mm) of points to the closest points of the surface's triangles."""
+    _, d, _ = trimesh.proximity.closest_point(surface.to_trimesh(), points)
+    return float(np.mean(d))
+
+
+def test_match_carries_transforms_options_and_seed(scaled_pair):
+    source, target, corr = scaled_pair
+    assert isinstance(corr.similarity, Transform) and isinstance(corr.rigid, Transform)
+    assert corr.affine.shape == (4, 4) and corr.deformation.shape == (source.n_vertices, 3)
+    assert corr.options == sk.MatchOptions() and corr.seed == 4
+    assert corr.rigid.scale == 1.0 and corr.rigid.weights.shape == (source.n_vertices,)
+    # the same matrices act the same on points
+    x = source.vertices
+    np.testing.assert_allclose(corr.similarity.apply(x), x @ corr.similarity.matrix[:3, :3].T
+                               + corr.similarity.matrix[:3, 3], atol=1e-9)
+
+
+def test_similarity_recovers_the_known_motion(scaled_pair):
+    """The target is the source shape under x -> 1.15 R x + shift (by construction); the
+    solver's pose is fitted to closest points of two triangulations, so it is close, not exact."""
+    _source, _target, corr = scaled_pair
+    angle = np.degrees(np.arccos(np.clip((np.trace(corr.similarity.rotation @ ROTATION.T) - 1) / 2, -1, 1)))
+    assert angle < 2.0
+    assert corr.similarity.scale == pytest.approx(1.15, rel=0.02)
+
+
+def test_transforms_bring_the_source_onto_the_target(scaled_pair):
+    source, target, corr = scaled_pair
+    size = np.sqrt(target.area)
+    x = source.vertices
+    before = _surface_distance(x, target)
+    by_similarity = _surface_distance(corr.similarity.apply(x), target)
+    by_affine = _surface_distance(x @ corr.affine[:3, :3].T + corr.affine[:3, 3], target)
+    deformed = _surface_distance(x @ corr.affine[:3, :3].T + corr.affine[:3, 3] + corr.deformation, target)
+    assert before > 0.5 * size
+    # two triangulations of one shape: what is left is the gap between their facets,
+    # measured here 0.0009-0.0010 sqrt(area) for all three
+    assert by_similarity < 0.003 * size and by_affine < 0.003 * size and deformed < 0.003 * size
+
+
+def test_rigid_pose_recovers_a_rigid_motion():
+    """Scale 1: the rigid pose of the final map is the applied motion (R, shift)."""
+    source, _ = sk.synthetic.organ_surface("liver", 1000, seed=21)
+    other, _ = sk.synthetic.organ_surface("liver", 1100, seed=22)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sk.AmbiguousMatchWarning)
+        corr = sk.match(source, _moved(other), seed=0)
+    np.testing.assert_allclose(corr.rigid.rotation, ROTATION, atol=0.02)
+    np.testing.assert_allclose(corr.rigid.apply(source.vertices), source.vertices @ ROTATION.T + SHIFT,
+                               atol=0.01 * np.sqrt(source.area))  # measured 0.003
+    back = corr.rigid.inverse()
+    np.testing.assert_allclose(back.apply(corr.rigid.apply(source.vertices)), source.vertices, atol=1e-9)
+
+
+def test_rigid_pose_ignores_a_growing_region():
+    """A bulge on one side gets robust weight ~0 and does not tilt the pose."""
+    s = sk.synthetic.icosphere(4, radius=30.0)
+    v = s.vertices.copy()
+    cap = v[:, 2] > 20.0
+    v[cap] *= 1.0 + 0.3 * ((v[cap, 2] - 20.0) / 10.0)[:, None]  # smooth growth of the top cap
+    target = sk.Surface(v @ ROTATION.T + SHIFT, s.faces)
+    ident = np.arange(s.n_vertices)
+    pose, rounds = rigid_pose(s, target, ident, np.ones(s.n_vertices))
+    np.testing.assert_allclose(pose.rotation, ROTATION, atol=1e-6)
+    np.testing.assert_allclose(pose.translation, SHIFT, atol=1e-4)
+    assert pose.weights[cap & (v[:, 2] > 25.0)].max() < 1e-6 and rounds >= 1
+
+
+def test_save_load_round_trip(scaled_pair, tmp_path):
+    _source, _target, corr = scaled_pair
+    back = sk.Correspondence.load(corr.save(tmp_path / "c.npz"))
+    for name in ("source_to_target", "target_to_source", "affine", "deformation"):
+        assert np.array_equal(getattr(back, name), getattr(corr, name))
+    for name in ("similarity", "rigid"):
+        a, b = getattr(corr, name), getattr(back, name)
+        for f in dataclasses.fields(Transform):
+            assert np.array_equal(getattr(a, f.name), getattr(b, f.name)), (name, f.name)
+    assert back.options == corr.options and back.seed == corr.seed
+
+
+def test_files_without_transforms_still_load(tmp_path):
+    """A file as written before the transforms were kept: they load as None."""
+    rng = np.random.default_rng(0)
+    old = sk.Correspondence(rng.integers(0, 30, 20), rng.integers(0, 20, 30))
+    path = old.save(tmp_path / "old.npz")
+    back = sk.Correspondence.load(path)
+    assert back.similarity is None and back.rigid is None and back.affine is None
+    assert back.deformation is None and back.options is None and back.seed is None
+
+
+def test_correspondence_checks_its_transforms():
+    ident = np.arange(5)
+    with pytest.raises(ValueError, match="deformation"):
+        sk.Correspondence(ident, ident, deformation=np.zeros((4, 3)))
+    with pytest.raises(ValueError, match="rigid"):
+        sk.Correspondence(ident, ident, rigid=np.eye(4))
+
+
+def test_match_options_frozen_and_round_trip():
+    opts = sk.MatchOptions(landmarks=np.array([[1, 2], [3, 4]]), n_poses=3)
+    assert opts.landmarks == ((1, 2), (3, 4)) and all(type(a) is int for p in opts.landmarks for a in p)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        opts.n_poses = 5
+    assert sk.MatchOptions.from_dict(opts.to_dict()) == opts
+    assert hash(opts) == hash(sk.MatchOptions.from_dict(opts.to_dict()))
+    with pytest.raises(ValueError, match="unknown"):
+        sk.MatchOptions.from_dict({"n_pose": 3})
+    with pytest.raises(ValueError, match="non-negative"):
+        sk.MatchOptions(landmarks=((0, -1),)).validate()
+
+
+def test_transform_composition():
+    a = Transform(sk.synthetic.random_rotation(1), np.array([1.0, 2.0, 3.0]), 2.0)
+    b = Transform(sk.synthetic.random_rotation(2), np.array([-4.0, 0.5, 1.0]), 0.5)
+    x = np.random.default_rng(0).normal(size=(10, 3))
+    np.testing.assert_allclose(a.then(b).apply(x), b.apply(a.apply(x)), atol=1e-12)
+    c = np.array([5.0, -1.0, 2.0])
+    turn = sk.synthetic.random_rotation(3)
+    np.testing.assert_allclose(a.turned_about(turn, c).apply(x), (a.apply(x) - c) @ turn.T + c, atol=1e-12)
