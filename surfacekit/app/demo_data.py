@@ -18,7 +18,6 @@ Sizes are scaled down by ``size="small"`` for quick tests.
 """
 from __future__ import annotations
 
-import csv
 import gzip
 from dataclasses import dataclass
 from pathlib import Path
@@ -27,6 +26,7 @@ import numpy as np
 
 from ..mesh import synthetic
 from ..io.files import atomic_path
+from ..io.tables import write_csv
 from ..mesh.surface import Surface
 
 REGION_NAMES = {1: "upper pole", 2: "lower pole", 3: "medial side", 4: "lateral side"}
@@ -221,10 +221,7 @@ def write_scenario(folder, size: str = "full", seed: int = 0) -> dict:
                               "group": r["group"], "role": "subject", "age": r["age"],
                               "sex": r["sex"]})
     paths["manifest"] = folder / "demo_cohort.csv"
-    with atomic_path(paths["manifest"], suffix=".csv") as tmp, open(tmp, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=list(manifest_rows[0]), lineterminator="\n")
-        w.writeheader()
-        w.writerows(manifest_rows)
+    write_csv(paths["manifest"], manifest_rows)
     text = SCENARIO_TEXT.format(baseline=sizes.baseline, followup=sizes.followup,
                                 voxel=" x ".join(f"{v:g}" for v in sizes.voxel),
                                 growth=sizes.growth_mm, true_dv=true_dv,
