@@ -161,7 +161,7 @@ def _fit(source, target, corr, weights, robust, max_iter, tol, scaling) -> Trans
         w0 = w0 * np.clip(conf, 0.0, 1.0)
     if not w0.sum() > 0:
         w0 = np.ones(len(x))  # no usable confidence: fall back to uniform weights
-    rot, t, s = kabsch(x, y, w0, scaling=scaling)
+    pose = Transform(*kabsch(x, y, w0, scaling=scaling))
     w = w0
     it = 0
     if robust:
@@ -169,7 +169,7 @@ def _fit(source, target, corr, weights, robust, max_iter, tol, scaling) -> Trans
         # residual is far beyond the robust scale (e.g. a growing region) get weight 0.
         extent = float(np.ptp(x, axis=0).max()) or 1.0
         for it in range(1, max_iter + 1):
-            r = np.linalg.norm(y - (s * x @ rot.T + t), axis=1)
+            r = np.linalg.norm(y - pose.apply(x), axis=1)
             sigma = MAD_TO_SD * float(np.median(r[w0 > 0]))
             sigma = max(sigma, 1e-9 * extent)
             u = r / (TUKEY_C * sigma)
@@ -177,15 +177,16 @@ def _fit(source, target, corr, weights, robust, max_iter, tol, scaling) -> Trans
             if w.sum() <= 0:
                 w = w0
                 break
-            rot_n, t_n, s_n = kabsch(x, y, w, scaling=scaling)
-            change = np.abs(rot_n - rot).max() + np.abs(t_n - t).max() / extent + abs(s_n - s)
-            rot, t, s = rot_n, t_n, s_n
+            new = Transform(*kabsch(x, y, w, scaling=scaling))
+            change = (np.abs(new.rotation - pose.rotation).max()
+                      + np.abs(new.translation - pose.translation).max() / extent + abs(new.scale - pose.scale))
+            pose = new
             if change < tol:
                 break
-    r2 = np.sum((y - (s * x @ rot.T + t)) ** 2, axis=1)
+    r2 = np.sum((y - pose.apply(x)) ** 2, axis=1)
     rms = float(np.sqrt(w @ r2 / w.sum()))
     wmax = w.max()
-    return Transform(rot, t, float(s), w / wmax if wmax > 0 else w, rms, it)
+    return Transform(pose.rotation, pose.translation, float(pose.scale), w / wmax if wmax > 0 else w, rms, it)
 
 
 def rigid_transform(source, target, corr=None, *, weights: np.ndarray | None = None,
