@@ -15,7 +15,7 @@ import surfacekit as sk
 from surfacekit.app.report import ReportLayer, ReportPanel, write_report
 from surfacekit.app.views import correspondence_panel
 
-pytestmark = [pytest.mark.browser,
+pytestmark = [pytest.mark.browser, pytest.mark.slow,  # a browser start: ~10 s
               pytest.mark.skipif(why_no_browser() is not None, reason=str(why_no_browser()))]
 
 EVIL = "<script>alert(1)</script>.ply"
