@@ -44,7 +44,7 @@ def _check_bulge(rep, sp_b):
     w = _bump_weight(sp_b)
     centre = np.argmax(w)
     far = w < 1e-3
-    # Acceptance of issue 6: 3-5 mm at the centre of a 4 mm bulge, < 0.5 mm mean |.| far away,
+    # Requirement: 3-5 mm at the centre of a 4 mm bulge, < 0.5 mm mean |.| far away,
     # positive log area ratio at the bulge.
     assert 3.0 <= rep.normal_displacement[centre] <= 5.0
     assert np.abs(rep.normal_displacement[far]).mean() < 0.5
@@ -154,7 +154,7 @@ def test_bad_input():
 
 @pytest.mark.slow
 def test_bulge_end_to_end_with_match():
-    """Issue 6 acceptance with the library's own correspondence (sk.match).
+    """Requirement check with the library's own correspondence (sk.match).
 
     Follow-up repositioned by a 30 degree rotation and a translation, matched with
     ``same_orientation=True`` (two scans of one patient in one scanner frame).

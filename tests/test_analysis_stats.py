@@ -24,7 +24,7 @@ def _planted(seed=0, n_per_group=12, n_vertices=2000, fraction=0.05, effect_sd=3
 
 
 def test_planted_effect_found_with_fwer_control():
-    """Issue 6 acceptance: 3 SD at 5% of 2000 vertices, 12 per group."""
+    """Requirement: 3 SD at 5% of 2000 vertices, 12 per group."""
     a, b, hit = _planted()
     res = sk.vertexwise_group_test(a, b, n_permutations=5000, seed=1)
     assert np.mean(res.p_fwer[hit] < 0.05) >= 0.8

@@ -7,8 +7,11 @@ import trimesh
 import surfacekit as sk
 from surfacekit.mesh import eigen
 from surfacekit.mesh.connectivity import Connectivity
-from surfacekit.mesh.laplacian import (face_to_vertex_matrix, face_to_vertex_mean,
-                                       needs_robust_laplacian)
+from surfacekit.mesh.laplacian import (
+    face_to_vertex_matrix,
+    face_to_vertex_mean,
+    needs_robust_laplacian,
+)
 from surfacekit.mesh.limits import NEEDLE_ANGLE_DEGREES
 from surfacekit.mesh.sampling import farthest_points, greedy_farthest
 from surfacekit.preparation import mesh_quality, repair

@@ -7,13 +7,12 @@ known permutation.
 """
 import numpy as np
 import pytest
+from groundtruth import held_out, locate_on_sphere_mesh, make_pair
 from scipy.spatial import cKDTree
 
 import surfacekit as sk
 from surfacekit.correspondence.fmap import SpectralShape, estimate_fmap, spectral_descriptors
 from surfacekit.correspondence.zoomout import fmap_from_pointmap
-
-from groundtruth import held_out, locate_on_sphere_mesh, make_pair
 
 
 def permuted_rotated(s: sk.Surface, seed: int):

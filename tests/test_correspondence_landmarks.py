@@ -16,6 +16,7 @@ import warnings
 
 import numpy as np
 import pytest
+from groundtruth import held_out, make_pair
 from scipy.spatial import cKDTree
 from scipy.special import eval_legendre
 
@@ -23,8 +24,6 @@ import surfacekit as sk
 from surfacekit.app import cli
 from surfacekit.correspondence.fmap import SpectralShape, landmark_descriptors
 from surfacekit.mesh.sampling import farthest_points
-
-from groundtruth import held_out, make_pair
 
 
 def true_partners(pair, source_ids):
@@ -165,7 +164,7 @@ def test_turn_probe_escapes_the_pose_pulled_off_by_anisotropic_growth():
         face, bary = p.source_truth
         idx = np.arange(0, p.source.n_vertices, 10)
 
-        def error(corr):
+        def error(corr, p=p, idx=idx, face=face, bary=bary):
             return sk.geodesic_error(p.target, corr.source_to_target[idx], (face[idx], bary[idx])).mean()
 
         stuck = sk.match(p.source, p.target, sk.MatchOptions(max_turns=0))

@@ -48,7 +48,7 @@ def _surface_distance(points, surface):
 
 
 def test_match_carries_transforms_options_and_seed(scaled_pair):
-    source, target, corr = scaled_pair
+    source, _target, corr = scaled_pair
     assert isinstance(corr.similarity, Transform) and isinstance(corr.rigid, Transform)
     assert corr.affine.shape == (4, 4) and corr.deformation.shape == (source.n_vertices, 3)
     assert corr.options == sk.MatchOptions() and corr.seed == 4

@@ -92,7 +92,7 @@ def test_landmarks_are_spread_and_written(sphere, tmp_path):
 
 def test_geodesic_error_matches_great_circles():
     """Heat-method geodesic error on a sphere vs the great-circle distance r·arccos(p·q/r²)
-    (CHECKS.md); heat method within a few percent at this resolution (Crane et al. 2013)."""
+    (great-circle distance); heat method within a few percent at this resolution (Crane et al. 2013)."""
     s = sk.synthetic.icosphere(4, radius=3.0)
     rng = np.random.default_rng(1)
     pred = rng.integers(0, s.n_vertices, 30)

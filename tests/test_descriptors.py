@@ -9,7 +9,7 @@ from surfacekit.mesh.synthetic import random_rotation
 def _sphere_heat_trace(t, l_max=400):
     """Exact heat kernel diagonal of the unit sphere, (1/4π) Σ (2l+1) e^{-l(l+1)t}.
 
-    Source: addition theorem for spherical harmonics (NIST DLMF §14.30), as in CHECKS.md.
+    Source: addition theorem for spherical harmonics (NIST DLMF §14.30).
     """
     ell = np.arange(l_max)
     return np.sum((2 * ell + 1) * np.exp(-ell * (ell + 1) * t)) / (4 * np.pi)
@@ -62,7 +62,7 @@ def test_small_time_hks_tracks_curvature_on_ellipsoid():
 
 
 def test_signatures_and_curvature_unchanged_by_rigid_motion(organ):
-    """Definition: intrinsic quantities and curvature do not change under rigid motion (CHECKS.md)."""
+    """Definition: intrinsic quantities and curvature do not change under rigid motion (do Carmo, Differential Geometry of Curves and Surfaces, 1976, §4-2: isometries preserve intrinsic quantities)."""
     moved = _moved(organ)
     pairs = [
         (sk.heat_kernel_signature(organ, k=60), sk.heat_kernel_signature(moved, k=60)),
@@ -143,7 +143,7 @@ def test_wks_matches_the_analytic_rectangle():
     m, n, lam = m[order], n[order], lam[order]
     assert np.allclose(basis.values[1:], lam, rtol=0.01)  # the mesh is fine enough for them
     x, y = s.vertices[:, :1], s.vertices[:, 1:2]
-    c = lambda j: np.where(j == 0, 1.0, np.sqrt(2.0))  # noqa: E731
+    c = lambda j: np.where(j == 0, 1.0, np.sqrt(2.0))
     phi = c(m) * c(n) * np.cos(np.pi * m * x / a) * np.cos(np.pi * n * y / b) / np.sqrt(a * b)
     exact = _paper_wks(lam, phi)
     w = sk.wave_kernel_signature(s, basis=basis, normalize=False)

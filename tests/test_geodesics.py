@@ -17,7 +17,7 @@ def _great_circle(v, i):
 
 
 def test_heat_distance_matches_great_circles_40k(sphere40k):
-    """Source: great-circle distance r·arccos(p·q/r²) (CHECKS.md); target <= 1% mean relative error."""
+    """Source: great-circle distance r·arccos(p·q/r²) (great circles are the geodesics of the sphere; do Carmo 1976, §4-4); target <= 1% mean relative error."""
     s = sphere40k
     d = sk.geodesic_distance(s, 17)
     gc = _great_circle(s.vertices, 17)
@@ -165,7 +165,7 @@ def _ccw_sign_agreement(s, center, idx, theta):
 
 
 def test_theta_is_counter_clockwise_about_the_outward_normal():
-    """Right-hand rule on the face winding (issue convention): on an outward sphere theta
+    """Right-hand rule on the face winding (the convention this library documents): on an outward sphere theta
     turns CCW about the outward normal; reversing the winding reverses it."""
     s = sk.synthetic.icosphere(4)
     idx, r, theta = sk.geodesic_polar_coordinates(s, 7, 0.4)

@@ -48,7 +48,7 @@ def test_near_duplicate_vertices_keep_operators_finite():
 
 @pytest.mark.parametrize("scale", [1e-3, 1e3])  # micrometres in mm, and metres in mm
 def test_extreme_scales_give_scaled_spectra(scale):
-    # Definition: eigenvalues scale as 1/s² (CHECKS.md); the solver's shift must follow the units.
+    # Definition: eigenvalues scale as 1/s² (scaling the metric by s scales the Laplace–Beltrami operator by 1/s²); the solver's shift must follow the units.
     base = sk.synthetic.ellipsoid((3.0, 2.0, 1.0), n=2000)
     ref = sk.eigenbasis(base, 12).values
     scaled = sk.Surface(base.vertices * scale, base.faces)

@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 
 import surfacekit as sk
-from surfacekit.preparation import remesh, repair
 from surfacekit.mesh.laplacian import cotangent_laplacian
-from surfacekit.preparation.pipeline import restore_volume, taubin_smooth
+from surfacekit.preparation import remesh, repair
 from surfacekit.preparation.mesh_quality import enclosed_centroid
+from surfacekit.preparation.pipeline import restore_volume, taubin_smooth
 
 R = 30.0  # mm
 
@@ -20,7 +20,7 @@ def _sphere(subdivisions=4):
 
 
 def broken_mesh(seed: int = 0) -> sk.Surface:
-    """A 30 mm icosphere with every flaw of the issue: two holes, 40 flipped faces, 15
+    """A 30 mm icosphere with every common flaw of segmentation meshes: two holes, 40 flipped faces, 15
     duplicated faces, 30 duplicated vertices, a non-manifold fin, two extra components."""
     rng = np.random.default_rng(seed)
     base = _sphere(4)
@@ -66,7 +66,7 @@ def sphere_mask_surface(radius: float, spacing=(1.0, 1.0, 1.0)) -> sk.Surface:
 
 # ---------------------------------------------------------------- repair
 def test_broken_mesh_is_repaired_and_each_flaw_is_named():
-    """Issue 3 criterion: every flaw named before, none after; one watertight outward component."""
+    """Requirement: every flaw named before, none after; one watertight outward component."""
     s = broken_mesh()
     before = sk.quality_report(s)
     text = " | ".join(before.warnings)
@@ -178,7 +178,7 @@ def test_random_triangle_soup_never_hangs(seed):
 
 # ---------------------------------------------------------------- smoothing
 def test_smoothing_removes_the_staircase_and_keeps_volume():
-    """Issue 3 criterion: mean-curvature spread on a sphere mask drops by at least half with
+    """Requirement: mean-curvature spread on a sphere mask drops by at least half with
     volume change under 1%; mean curvature 1/r on a sphere (do Carmo 1976)."""
     r = 16.0
     s = sphere_mask_surface(r)

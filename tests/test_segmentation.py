@@ -83,7 +83,7 @@ def test_marching_cubes_surface_is_closed_outward_in_world_mm(mask_case):
 
 
 def test_mask_to_prepared_surface_meets_the_done_criteria(mask_case):
-    """Issue 3 criterion: one watertight outward component, volume within 3% of voxel count x
+    """Requirement: one watertight outward component, volume within 3% of voxel count x
     voxel volume (common practice), centroid within 1 mm, vertex count within 15% of target."""
     vol, affine, s = mask_case
     volume, centroid = _mask_reference(vol, affine)

@@ -28,7 +28,7 @@ import ast
 import io
 import tokenize
 from dataclasses import dataclass
-from functools import lru_cache
+from functools import cache
 from pathlib import Path
 
 PACKAGE = "surfacekit"
@@ -56,7 +56,7 @@ def module_name(path: Path) -> str:
     return ".".join(parts)
 
 
-@lru_cache(maxsize=None)
+@cache
 def modules() -> dict:
     """Dotted module name -> path, for every .py file of the package."""
     return {module_name(p): p for p in sorted(ROOT.rglob("*.py"))}
@@ -94,7 +94,7 @@ def _import_module_call(node: ast.Call) -> tuple | None:
     return arg.value, len(node.args) > 1 or any(k.arg == "package" for k in node.keywords)
 
 
-@lru_cache(maxsize=None)
+@cache
 def imports() -> tuple:
     """Every import edge in the package (statements at any depth, literal import_module calls)."""
     found = []

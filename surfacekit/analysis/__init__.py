@@ -2,7 +2,12 @@
 
 For research use only; not for diagnosis or treatment decisions.
 """
-from ..correspondence.alignment import Transform, rigid_transform, similarity_transform, weighted_umeyama
+from ..correspondence.alignment import (
+    Transform,
+    rigid_transform,
+    similarity_transform,
+    weighted_umeyama,
+)
 from .change import ChangeReport, measure_change
 from .labels import transfer_labels
 from .metrics import change_metrics

@@ -58,7 +58,7 @@ def change_metrics(report, mask: np.ndarray | None = None) -> dict:
     wn = w / w.sum()
     absolute = np.abs(nd)
     return {
-        "n_vertices": int(len(nd)), "area_mm2": float(w.sum()),
+        "n_vertices": len(nd), "area_mm2": float(w.sum()),
         "mean_normal_displacement_mm": float(wn @ nd),
         "median_normal_displacement_mm": weighted_percentile(nd, w, 50),
         "p5_normal_displacement_mm": weighted_percentile(nd, w, 5),

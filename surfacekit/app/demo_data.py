@@ -24,9 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from ..mesh import synthetic
 from ..io.files import atomic_path
 from ..io.tables import write_csv
+from ..mesh import synthetic
 from ..mesh.surface import Surface
 
 REGION_NAMES = {1: "upper pole", 2: "lower pole", 3: "medial side", 4: "lateral side"}

@@ -270,7 +270,7 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         raise ValueError(f"target_vertices must be >= 100, got {target_vertices}")
     match_options = MatchOptions() if match_options is None else match_options
     if not isinstance(match_options, MatchOptions):
-        raise ValueError("match_options must be a MatchOptions, got "
+        raise ValueError("match_options must be a MatchOptions, got "  # noqa: TRY004  house rule: bad options are ValueError
                          f"{type(match_options).__name__}")
     match_options.validate()
     start = time.perf_counter()

@@ -17,6 +17,7 @@ import re
 
 import numpy as np
 
+from ..mesh.surface import SurfaceError
 from .parsing import (
     as_integers,
     column_type,
@@ -25,7 +26,6 @@ from .parsing import (
     group_fields,
     to_numbers,
 )
-from ..mesh.surface import SurfaceError
 
 # PLY scalar type names (both spellings of the specification) -> numpy dtype code
 PLY_TYPES = {

@@ -16,8 +16,8 @@ import re
 
 import numpy as np
 
-from .parsing import as_integers, fan_triangulate, to_numbers
 from ..mesh.surface import SurfaceError
+from .parsing import as_integers, fan_triangulate, to_numbers
 
 
 def _text_lines(data: bytes) -> list[bytes]:

@@ -17,8 +17,8 @@ import re
 
 import numpy as np
 
-from .parsing import FIELD_NAME, fan_triangulate, split_cells, to_numbers
 from ..mesh.surface import SurfaceError
+from .parsing import FIELD_NAME, fan_triangulate, split_cells, to_numbers
 
 # VTK type name -> numpy type code (big-endian applied in binary files).  "long" is
 # taken as 8 bytes, its size on 64-bit Linux writers (from memory, not verified).

@@ -30,9 +30,9 @@ __all__ = [
     "default_heat_times",
     "gaussian_curvature",
     "heat_kernel_signature",
+    "laplace_spectrum",
     "mean_curvature",
     "scale_invariant_hks",
-    "laplace_spectrum",
     "spectrum_distance",
     "wave_kernel_signature",
 ]

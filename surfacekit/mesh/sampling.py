@@ -6,7 +6,7 @@ One greedy loop (:func:`greedy_farthest`) serves both metrics: Euclidean here
 """
 from __future__ import annotations
 
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 

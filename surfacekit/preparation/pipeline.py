@@ -16,12 +16,12 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.linalg import cg
 
+from ..mesh.laplacian import cotangent_laplacian
+from ..mesh.surface import Surface, SurfaceError
 from . import repair
 from .mesh_quality import QualityReport, enclosed_centroid, quality_report
 from .remesh import improve_triangles, resample
 from .repair import umbrella_matrix
-from ..mesh.laplacian import cotangent_laplacian
-from ..mesh.surface import Surface, SurfaceError
 
 __all__ = [
     "PrepareReport",

@@ -7,9 +7,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from .repair import compact, umbrella_matrix
 from ..mesh.connectivity import Connectivity, row_keys
 from ..mesh.surface import Surface
+from .repair import compact, umbrella_matrix
 
 
 def _corner_angle(p: np.ndarray, q: np.ndarray, r: np.ndarray) -> np.ndarray:

@@ -11,9 +11,9 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order
 from scipy.sparse.linalg import spsolve
 
-from .mesh_quality import coincident_vertex_map, degenerate_faces, group_representatives
 from ..mesh.connectivity import Connectivity
 from ..mesh.surface import Surface, SurfaceError
+from .mesh_quality import coincident_vertex_map, degenerate_faces, group_representatives
 
 
 def umbrella_matrix(f: np.ndarray, n: int) -> sp.csr_matrix:
