@@ -15,44 +15,40 @@ from .version import __version__
 
 logging.getLogger("surfacekit").addHandler(logging.NullHandler())
 
-# public name -> module that defines it (relative to this package), in pipeline order
-_LAZY = {
-    # mesh: the surface, its operators, geodesics and descriptors
-    "laplacian": "mesh.laplacian", "eigenbasis": "mesh.eigen", "Eigenbasis": "mesh.eigen",
-    "gradient": "mesh.laplacian", "divergence": "mesh.laplacian", "mass_matrix": "mesh.laplacian",
-    "cotangent_laplacian": "mesh.laplacian", "point_cloud_laplacian": "mesh.laplacian",
-    "EigenSolverWarning": "mesh.eigen",
-    "heat_kernel_signature": "mesh.descriptors", "scale_invariant_hks": "mesh.descriptors",
-    "wave_kernel_signature": "mesh.descriptors", "laplace_spectrum": "mesh.descriptors",
-    "spectrum_distance": "mesh.descriptors", "mean_curvature": "mesh.descriptors",
-    "gaussian_curvature": "mesh.descriptors",
-    "geodesic_distance": "mesh.geodesics", "farthest_point_sampling": "mesh.geodesics",
-    "geodesic_distance_matrix": "mesh.geodesics", "geodesic_polar_coordinates": "mesh.geodesics",
-    "patch_descriptors": "mesh.geodesics", "GeodesicSolver": "mesh.geodesics",
-    # io: file formats
-    "load": "io", "save": "io", "load_fields": "io", "save_fields": "io",
-    # preparation: segmentation volumes, repair, remeshing, mesh quality
-    "from_segmentation": "preparation", "prepare": "preparation",
-    "quality_report": "preparation", "QualityReport": "preparation",
-    "PrepareReport": "preparation",
-    # correspondence
-    "match": "correspondence", "Correspondence": "correspondence",
-    "MatchOptions": "correspondence", "map_quality": "correspondence",
-    "geodesic_error": "correspondence", "AmbiguousMatchWarning": "correspondence",
-    "load_landmarks": "correspondence", "save_landmarks": "correspondence",
-    "rigid_transform": "correspondence", "similarity_transform": "correspondence",
-    # analysis
-    "measure_change": "analysis", "ChangeReport": "analysis",
-    "compare": "analysis", "Comparison": "analysis",
-    "transfer_labels": "analysis", "generalized_procrustes": "analysis",
-    "ShapeModel": "analysis", "shape_model": "analysis",
-    "vertexwise_group_test": "analysis", "GroupTestResult": "analysis",
-    "spectral_distances": "analysis",
-    # cohort runs
-    "run_cohort": "cohort",
-    # application: report
-    "write_report": "app.report",
+# module (relative to this package) -> the public names it defines, in pipeline order
+_PUBLIC = {
+    "mesh.laplacian": (
+        "laplacian", "gradient", "divergence", "mass_matrix", "cotangent_laplacian",
+        "point_cloud_laplacian",
+    ),
+    "mesh.eigen": ("eigenbasis", "Eigenbasis", "EigenSolverWarning"),
+    "mesh.descriptors": (
+        "heat_kernel_signature", "scale_invariant_hks", "wave_kernel_signature",
+        "laplace_spectrum", "spectrum_distance", "mean_curvature", "gaussian_curvature",
+    ),
+    "mesh.geodesics": (
+        "geodesic_distance", "farthest_point_sampling", "geodesic_distance_matrix",
+        "geodesic_polar_coordinates", "patch_descriptors", "GeodesicSolver",
+    ),
+    "io": ("load", "save", "load_fields", "save_fields"),
+    "preparation": (
+        "from_segmentation", "prepare", "quality_report", "QualityReport", "PrepareReport",
+    ),
+    "correspondence": (
+        "match", "Correspondence", "MatchOptions", "map_quality", "geodesic_error",
+        "AmbiguousMatchWarning", "load_landmarks", "save_landmarks", "rigid_transform",
+        "similarity_transform",
+    ),
+    "analysis": (
+        "measure_change", "ChangeReport", "compare", "Comparison", "transfer_labels",
+        "generalized_procrustes", "ShapeModel", "shape_model", "vertexwise_group_test",
+        "GroupTestResult", "spectral_distances",
+    ),
+    "cohort": ("run_cohort",),
+    "app.report": ("write_report",),
 }
+# public name -> module that defines it
+_LAZY = {name: module for module, names in _PUBLIC.items() for name in names}
 
 # stage folders, and the module names earlier releases exposed as ``sk.<name>``
 _SUBMODULES = {

@@ -163,11 +163,13 @@ class Correspondence:
 
     @property
     def n_source(self) -> int:
-        return int(self.source_to_target.shape[0])
+        """Number of source vertices (the length of `source_to_target`)."""
+        return len(self.source_to_target)
 
     @property
     def n_target(self) -> int:
-        return int(self.target_to_source.shape[0])
+        """Number of target vertices (the length of `target_to_source`)."""
+        return len(self.target_to_source)
 
     # ------------------------------------------------------------ transfer
     def _carry(self, values, n_in: int, pull: np.ndarray, push: np.ndarray, labels, what: str):

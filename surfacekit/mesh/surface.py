@@ -137,10 +137,12 @@ class Surface:
 
     @property
     def n_vertices(self) -> int:
+        """Number of vertices, unused ones included."""
         return int(self._vertices.shape[0])
 
     @property
     def n_faces(self) -> int:
+        """Number of triangles."""
         return int(self._faces.shape[0])
 
     def __repr__(self) -> str:
