@@ -7,7 +7,7 @@ from pathlib import Path
 
 from .cli_util import DEMO_DATA as D
 from .cli_util import existing
-from .context import EXIT_SOME_FAILED, Command, Context, InputError
+from .context import EXIT_SOME_FAILED, Command, Context, InputError, emit, writable_folder
 
 
 # ---------------------------------------------------------------- cohort
@@ -41,6 +41,7 @@ def check_manifest(path: Path) -> None:
 
 def _cohort(ctx: Context) -> dict:
     from ..cohort import run_cohort
+    from ..cohort.run import CohortFailedError
 
     a = ctx.args
     if a.workers < 1:
@@ -55,19 +56,21 @@ def _cohort(ctx: Context) -> dict:
     out = Path(a.output)
     if out.exists() and not out.is_dir():
         raise InputError(f"output {out} exists and is a file")
-    result = run_cohort(manifest, out, a.template, workers=a.workers, scheduler=a.scheduler,
-                        target_vertices=a.target_vertices, n_permutations=a.permutations,
-                        seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty(),
-                        force=a.force)
-    if result.n_failed == result.n_subjects:
-        raise InputError(f"every subject failed; first: {result.failed[0][0]}: {result.failed[0][1]}")
+    writable_folder(out)
+    try:
+        result = run_cohort(manifest, out, a.template, workers=a.workers, scheduler=a.scheduler,
+                            target_vertices=a.target_vertices, n_permutations=a.permutations,
+                            seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty(),
+                            force=a.force)
+    except CohortFailedError as exc:  # exit 2; the errors stay in cohort_summary.csv
+        raise InputError(str(exc)) from None
     ctx.say(result.summary())
     summary = {"manifest": manifest.name, "output": str(out), "subjects": result.n_subjects,
                "failed": result.n_failed, "computed": result.n_computed, "cached": result.n_cached,
                "tables": {k: Path(v).name for k, v in result.tables.items()}}
     if result.n_failed:
-        print(f"surfacekit: {result.n_failed} of {result.n_subjects} subjects failed "
-              f"(see {out / 'cohort_summary.csv'})", file=sys.stderr)
+        emit(f"surfacekit: {result.n_failed} of {result.n_subjects} subjects failed "
+             f"(see {out / 'cohort_summary.csv'})")
         summary["exit_code"] = EXIT_SOME_FAILED
     return summary
 

@@ -14,12 +14,22 @@ import sys
 import traceback
 import warnings
 from collections.abc import Sequence
+from pathlib import Path
 
 from ..io.tables import json_default
 from ..mesh.surface import SurfaceError
 from ..version import __version__
 from .commands import COMMANDS
-from .context import EXIT_BAD_INPUT, EXIT_INTERNAL, EXIT_OK, Context, InputError
+from .context import (
+    EXIT_BAD_INPUT,
+    EXIT_INTERNAL,
+    EXIT_OK,
+    Context,
+    InputError,
+    emit,
+    silence,
+    why_unwritable,
+)
 
 __all__ = ["build_parser", "main"]
 
@@ -78,15 +88,27 @@ def _short(v):
 
 
 def _one_line(exc: BaseException) -> str:
+    if isinstance(exc, PermissionError) and exc.filename:
+        return f"permission denied: {exc.filename}"
+    if isinstance(exc, (FileExistsError, NotADirectoryError)) and exc.filename:
+        path = Path(exc.filename)
+        return f"cannot use {path}: {why_unwritable(exc, path.parent)}"
     text = str(exc).strip() or type(exc).__name__
     return " ".join(text.split())
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the ``surfacekit`` command; returns the exit code."""
+    """Entry point of the ``surfacekit`` command; returns the exit code.
+
+    A reader that closes the pipe early (``surfacekit inspect x.ply --json | head``)
+    ends the command quietly with exit code 0: the summary is printed after every
+    output file is complete, so the work is done and only the reader stopped
+    reading (messages on stderr are dropped the same way).
+    """
     argv = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in argv
     ctx = None
+    committed = False
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
@@ -101,28 +123,38 @@ def main(argv: Sequence[str] | None = None) -> int:
                 warnings.showwarning = _one_line_warning
             summary = args.run(ctx)
         ctx.outputs.commit()
+        committed = True
         summary = dict(summary or {})
         code = int(summary.pop("exit_code", EXIT_OK))  # e.g. cohort runs with failed subjects
         _print_summary(ctx, summary)
+        sys.stdout.flush()  # a closed pipe shows here, not in the flush at exit
         return code
-    except (InputError, SurfaceError, ValueError, FileNotFoundError, IsADirectoryError,
-            NotADirectoryError) as exc:
+    except BrokenPipeError:
+        silence(sys.stdout)
+        if committed:
+            return EXIT_OK
         _cleanup(ctx)
-        if debug:
-            traceback.print_exc()
-        print(f"surfacekit: error: {_one_line(exc)}", file=sys.stderr)
-        return EXIT_BAD_INPUT
+        return _fail(EXIT_INTERNAL, "internal error: output pipe closed before the command finished",
+                     debug)
+    except (InputError, SurfaceError, ValueError, FileNotFoundError, IsADirectoryError,
+            NotADirectoryError, FileExistsError, PermissionError) as exc:
+        _cleanup(ctx)
+        return _fail(EXIT_BAD_INPUT, f"error: {_one_line(exc)}", debug)
     except KeyboardInterrupt:
         _cleanup(ctx)
-        print("surfacekit: interrupted", file=sys.stderr)
+        emit("surfacekit: interrupted")
         return 130
     except Exception as exc:  # noqa: BLE001 - every other failure is ours
         _cleanup(ctx)
-        if debug:
-            traceback.print_exc()
-        print(f"surfacekit: internal error: {type(exc).__name__}: {_one_line(exc)} "
-              "(rerun with --debug for details)", file=sys.stderr)
-        return EXIT_INTERNAL
+        return _fail(EXIT_INTERNAL, f"internal error: {type(exc).__name__}: {_one_line(exc)} "
+                     "(rerun with --debug for details)", debug)
+
+
+def _fail(code: int, message: str, debug: bool) -> int:
+    if debug:
+        traceback.print_exc()
+    emit(f"surfacekit: {message}")
+    return code
 
 
 def _cleanup(ctx: Context | None) -> None:
@@ -131,7 +163,7 @@ def _cleanup(ctx: Context | None) -> None:
 
 
 def _one_line_warning(message, category, filename, lineno, file=None, line=None):
-    print(f"surfacekit: warning: {_one_line(message)}", file=sys.stderr)
+    emit(f"surfacekit: warning: {_one_line(message)}")
 
 
 if __name__ == "__main__":  # pragma: no cover

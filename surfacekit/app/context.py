@@ -10,6 +10,7 @@ whole command succeeded; an existing output is replaced only with ``--force``.
 from __future__ import annotations
 
 import argparse
+import errno
 import os
 import shutil
 import sys
@@ -45,9 +46,11 @@ class Outputs:
         if final.exists() and final.is_dir() != directory:
             kind = "a folder" if final.is_dir() else "a file"
             raise InputError(f"output {final} exists and is {kind}")
-        parent = final.parent if str(final.parent) else Path(".")
-        parent.mkdir(parents=True, exist_ok=True)
-        stage_dir = Path(tempfile.mkdtemp(prefix=f".{final.name}.", suffix=".part", dir=parent))
+        parent = writable_folder(final.parent if str(final.parent) else Path("."), final)
+        try:
+            stage_dir = Path(tempfile.mkdtemp(prefix=f".{final.name}.", suffix=".part", dir=parent))
+        except OSError as exc:
+            raise InputError(f"cannot write output {final}: {why_unwritable(exc, parent)}") from None
         self._dirs.append(stage_dir)
         staged = stage_dir if directory else stage_dir / final.name
         self._staged.append((staged, final, directory))
@@ -79,6 +82,51 @@ class Outputs:
         self._dirs.clear()
 
 
+def why_unwritable(exc: OSError, folder: Path) -> str:
+    """Plain words for an OSError met while creating or writing in `folder`."""
+    for p in (folder, *folder.parents):
+        if p.exists() and not p.is_dir():
+            return f"{p} is a file, not a folder"
+    if exc.errno in (errno.EACCES, errno.EPERM):
+        return f"no permission to write in {folder}"
+    if exc.errno == errno.EROFS:
+        return f"{folder} is on a read-only file system"
+    if exc.errno == errno.ENOSPC:
+        return f"no space left on the device of {folder}"
+    return exc.strerror or type(exc).__name__
+
+
+def writable_folder(folder: Path, output: Path | None = None) -> Path:
+    """Create `folder` if needed; an InputError in plain words when it cannot hold outputs."""
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"cannot write output {output or folder}: {why_unwritable(exc, folder)}") from None
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise InputError(f"cannot write output {output or folder}: no permission to write in {folder}")
+    return folder
+
+
+def emit(message: str, stream=None) -> None:
+    """Print one message; a reader that closed the pipe (``| head``) is not an error."""
+    stream = sys.stderr if stream is None else stream
+    try:
+        print(message, file=stream, flush=True)
+    except BrokenPipeError:
+        silence(stream)
+
+
+def silence(stream) -> None:
+    """Point a closed stream at /dev/null, so later writes and the flush at exit stay quiet."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, stream.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):  # not a real file descriptor (e.g. captured in tests)
+        pass
+
+
 class Context:
     """What every command gets: options, output staging, messages and progress bars."""
 
@@ -89,7 +137,7 @@ class Context:
 
     def say(self, message: str) -> None:
         if not self.quiet:
-            print(message, file=sys.stderr)
+            emit(message)
 
     def progress(self, total: int, desc: str):
         """A tqdm bar on stderr, silent with --quiet or when stderr is not a terminal."""

@@ -6,6 +6,8 @@ manifest position, so the tables never depend on the engine or on timing.
 """
 from __future__ import annotations
 
+import ast
+import inspect
 import json
 import multiprocessing
 import os
@@ -41,6 +43,61 @@ def _failure(task: SubjectTask, exc: BaseException) -> dict:
     return {"index": task.index, "subject": task.subject, "key": task.key, "cached": False,
             "status": "failed", "error": one_line(exc), "values": {}, "timings": {},
             "worker": {}}
+
+
+class UnguardedScriptError(RuntimeError):
+    """Worker processes would re-run the calling script (no ``if __name__ == "__main__":``)."""
+
+
+def guarded_lines(source: str) -> list[tuple[int, int]]:
+    """Line ranges of the top-level ``if __name__ == "__main__":`` blocks of a script."""
+    ranges = []
+    for node in ast.parse(source).body:
+        test = getattr(node, "test", None)
+        if not (isinstance(node, ast.If) and isinstance(test, ast.Compare) and len(test.comparators) == 1
+                and isinstance(test.ops[0], ast.Eq)):
+            continue
+        sides = [test.left, test.comparators[0]]
+        names = {s.id for s in sides if isinstance(s, ast.Name)}
+        texts = {s.value for s in sides if isinstance(s, ast.Constant)}
+        if names == {"__name__"} and texts == {"__main__"}:
+            ranges.append((node.body[0].lineno, node.end_lineno or node.lineno))
+    return ranges
+
+
+def check_main_guard(what: str) -> None:
+    """Raise :class:`UnguardedScriptError` when called from the top level of an unguarded script.
+
+    Local worker processes start with the "spawn" method, which imports the main
+    script again in every worker (Python documentation, ``multiprocessing``,
+    "Programming guidelines: safe importing of main module"); a call at the
+    script's top level would then run again in each worker, which fails the pool.
+    The check walks the call stack to the script's module-level frame and looks,
+    in the script's syntax tree, whether that line lies inside an
+    ``if __name__ == "__main__":`` block.  Interactive sessions and ``python -c``
+    have no script file and pass.
+    """
+    main = sys.modules.get("__main__")
+    script = getattr(main, "__file__", None)
+    if not script or not str(script).endswith(".py"):
+        return
+    frame = inspect.currentframe()
+    line = None
+    while frame is not None:
+        if frame.f_code.co_name == "<module>" and frame.f_globals is vars(main):
+            line = frame.f_lineno
+        frame = frame.f_back
+    if line is None:
+        return
+    try:
+        ranges = guarded_lines(Path(script).read_text(encoding="utf-8"))
+    except (OSError, SyntaxError, UnicodeDecodeError, ValueError):
+        return
+    if not any(lo <= line <= hi for lo, hi in ranges):
+        raise UnguardedScriptError(
+            f"{what} is called at the top level of {Path(script).name} (line {line}), which every "
+            "worker process imports again: put the call under 'if __name__ == \"__main__\":' "
+            "(or use workers=1)")
 
 
 def run_serial(tasks: Sequence[SubjectTask]) -> Iterator[dict]:

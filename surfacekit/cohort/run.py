@@ -33,7 +33,7 @@ from ..correspondence import MatchOptions
 from ..io.files import save, save_fields
 from ..io.tables import write_json
 from ..version import __version__
-from .engines import engine_name, run_tasks
+from .engines import check_main_guard, engine_name, run_tasks
 from .manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
 from .subject import (
     MARKER_SUFFIX,
@@ -47,7 +47,7 @@ from .tables import check_covariate_names, write_fields_matrix, write_group_test
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["CohortResult", "read_manifest", "run_cohort"]
+__all__ = ["CohortFailedError", "CohortResult", "read_manifest", "run_cohort"]
 
 
 @dataclass
@@ -110,6 +110,21 @@ class CohortResult:
             lines.append(f"... and {self.n_failed - 20} more failures (see cohort_summary.csv)")
         lines.append(f"tables: {', '.join(str(p) for p in self.tables.values())}")
         return "\n".join(lines)
+
+
+class CohortFailedError(RuntimeError):
+    """Every subject of a cohort run failed; ``.result`` holds the :class:`CohortResult`.
+
+    The tables are written before it is raised, so ``cohort_summary.csv`` lists
+    each subject's error.
+    """
+
+    def __init__(self, result: CohortResult):
+        subject, error = result.failed[0]
+        super().__init__(f"every one of the {result.n_subjects} cohort subjects failed; first: "
+                         f"{subject}: {error} (each error is in "
+                         f"{result.output_dir / 'cohort_summary.csv'})")
+        self.result = result
 
 
 def _digest_or_marker(path: Path) -> str:
@@ -263,6 +278,11 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     ------
     ValueError
         Bad manifest, missing or unreadable template, bad arguments.
+    UnguardedScriptError
+        ``workers > 1`` called from the top level of a script without
+        ``if __name__ == "__main__":`` (each worker would run the script again).
+    CohortFailedError
+        Every subject failed (the tables are written first; ``.result`` holds them).
     """
     if int(workers) < 1:
         raise ValueError(f"workers must be >= 1, got {workers}")
@@ -273,6 +293,8 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         raise ValueError("match_options must be a MatchOptions, got "  # noqa: TRY004  house rule: bad options are ValueError
                          f"{type(match_options).__name__}")
     match_options.validate()
+    if int(workers) > 1 and not scheduler:
+        check_main_guard(f"run_cohort(workers={int(workers)})")
     start = time.perf_counter()
     man: Manifest = read_manifest(manifest, template=template)
     check_covariate_names(man)
@@ -300,4 +322,6 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         "subjects_per_minute": result.subjects_per_minute, "stage_seconds": stage_seconds,
         "peak_rss_mb": peak, "version": __version__, "options": options,
         "failed": result.failed})
+    if result.n_subjects and result.n_failed == result.n_subjects:
+        raise CohortFailedError(result)
     return result
