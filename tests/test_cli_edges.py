@@ -11,6 +11,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 import surfacekit as sk
@@ -116,3 +117,46 @@ def test_closed_pipe_after_writing_keeps_the_output(kidney, tmp_path):
     proc = _shell(f"surfacekit inspect {kidney} -o {out} --json | head -c 1; echo \" ${{PIPESTATUS[0]}}\"")
     assert proc.stdout == "{ 0\n" and proc.stderr == ""
     assert json.loads(out.read_text())["vertices"] == sk.load(kidney).n_vertices
+
+
+# ------------------------------------------------------------------ every mesh format
+FORMATS = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk", ".npz")
+
+
+def test_command_line_formats_are_the_library_formats():
+    from surfacekit.app.cli_util import MESH_SUFFIXES
+    from surfacekit.io.files import MESH_SUFFIXES as LIBRARY
+
+    assert set(MESH_SUFFIXES) == set(LIBRARY) == set(FORMATS)
+
+
+@pytest.mark.parametrize("suffix", FORMATS)
+def test_prepare_writes_every_format_that_load_reads(suffix, kidney, tmp_path, capsys):
+    out = tmp_path / f"clean{suffix}"
+    code, stdout, err = run(["prepare", kidney, "-o", out, "--target-vertices", "400", "--json", "-q"],
+                            capsys)
+    assert code == 0, err
+    after = json.loads(stdout)["after"]
+    back = sk.load(out)
+    assert back.n_vertices == after["vertices"] and back.n_faces == after["faces"]
+    assert back.area == pytest.approx(after["area_mm2"], rel=1e-5)  # float32 formats round
+
+
+def test_npz_meshes_are_accepted_by_every_command(kidney, tmp_path, capsys):
+    s = sk.load(kidney)
+    mesh = tmp_path / "kidney.npz"
+    sk.save(s, mesh)
+    code, stdout, err = run(["inspect", mesh, "--json"], capsys)
+    assert code == 0, err
+    assert json.loads(stdout)["vertices"] == s.n_vertices
+    code, _, err = run(["describe", mesh, "-o", tmp_path / "d.npz", "--eigenpairs", "10", "-q"], capsys)
+    assert code == 0, err
+    code, _, err = run(["match", mesh, kidney, "-o", tmp_path / "map.npz", "-q"], capsys)
+    assert code == 0, err
+    np.testing.assert_array_equal(sk.Correspondence.load(tmp_path / "map.npz").source_to_target,
+                                  np.arange(s.n_vertices))  # the same mesh maps onto itself
+    code, _, err = run(["change", mesh, kidney, "-o", tmp_path / "chg", "--no-report", "-q"], capsys)
+    assert code == 0, err
+    code, _, err = run(["inspect", tmp_path / "kidney.xyz"], capsys)
+    assert code == 2
+    assert one_error_line(err).startswith("surfacekit: error: ")

@@ -3,11 +3,13 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from ..io.files import MESH_SUFFIXES as LIBRARY_MESH_SUFFIXES
 from ..mesh.surface import SurfaceError
 from .context import InputError
 
 VOLUME_SUFFIXES = (".nii", ".nii.gz")
-MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk")
+#: every mesh format the library reads and writes (``sk.load`` / ``sk.save``)
+MESH_SUFFIXES = LIBRARY_MESH_SUFFIXES
 #: where ``surfacekit demo -o surfacekit-demo`` writes its inputs: the help examples use them
 DEMO_DATA = "surfacekit-demo/data"
 

@@ -17,6 +17,7 @@ from ..io.tables import write_json
 from .batch_commands import COHORT, DEMO
 from .cli_util import DEMO_DATA as D
 from .cli_util import (
+    MESH_SUFFIXES,
     existing,
     input_record,
     is_volume,
@@ -29,7 +30,7 @@ from .context import Command, Context, InputError
 
 # ---------------------------------------------------------------- inspect
 def _inspect_args(p):
-    p.add_argument("mesh", help="surface mesh (.ply .obj .stl .off .gii .vtk)")
+    p.add_argument("mesh", help="surface mesh (.ply .obj .stl .off .gii .vtk .npz)")
     p.add_argument("-o", "--output", help="also write the quality summary to this .json file")
 
 
@@ -52,7 +53,8 @@ def _inspect(ctx: Context) -> dict:
 # ---------------------------------------------------------------- prepare
 def _prepare_args(p):
     p.add_argument("input", help="label volume (.nii/.nii.gz) or mesh")
-    p.add_argument("-o", "--output", required=True, help="output mesh (.ply .obj .stl .off)")
+    p.add_argument("-o", "--output", required=True,
+                   help="output mesh (.ply .obj .stl .off .gii .vtk .npz)")
     p.add_argument("--label", type=int, default=1, help="label to mesh in a volume (default 1)")
     p.add_argument("--target-vertices", type=int, default=None,
                    help="resample to about this many vertices (default: keep)")
@@ -66,7 +68,7 @@ def _prepare(ctx: Context) -> dict:
     a = ctx.args
     if a.target_vertices is not None and a.target_vertices < 100:
         raise InputError(f"--target-vertices must be at least 100, got {a.target_vertices}")
-    target = ctx.outputs.claim(a.output, suffixes=(".ply", ".obj", ".stl", ".off"))
+    target = ctx.outputs.claim(a.output, suffixes=MESH_SUFFIXES)
     src = existing(a.input)
     with ctx.progress(2, "prepare") as bar:
         if is_volume(src):
