@@ -17,6 +17,7 @@ from ..mesh.proximity import near_faces, outward_vertex_normals, project_pairs
 from ..mesh.surface import Surface, SurfaceError
 from . import geometry as geo
 from .metrics import REGION_COLUMNS, change_metrics, regional_rows
+from .plausibility import change_value_warnings, pair_warnings
 
 
 @dataclass
@@ -95,6 +96,7 @@ class ChangeReport:
             "area_change_percent": self.area_change_percent,
             **field_stats,
             "alignment_rms_mm": float(self.info.get("alignment_rms_mm", float("nan"))),
+            "warnings": list(self.info.get("warnings", [])),
             "note": RESEARCH_NOTE,
         }
 
@@ -246,6 +248,11 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
     4. ``log_area_ratio``: per baseline face, log(area of the mapped triangle /
        face area) (the Jacobian of the piecewise-linear map), area-averaged to
        vertices and smoothed over the same length as in step 2.
+    5. ``info["warnings"]`` (also in :meth:`ChangeReport.summary`): plain sentences
+       when a surface's size is implausible for an organ, the two differ in scale
+       by more than 3x, the alignment residual is large for the organ's size, or a
+       volume or area change is so large that a units problem is the likely cause
+       (:mod:`surfacekit.analysis.plausibility`).
 
     Parameters
     ----------
@@ -282,10 +289,15 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
             "robust_inlier_fraction": (float(np.mean(np.asarray(weights) > 0))
                                        if weights is not None else None),
             "correspondence_route": str(corr.info.get("route", "given"))}
-    return ChangeReport(
+    report = ChangeReport(
         displacement=displacement, normal_displacement=normal_displacement,
         log_area_ratio=log_area_ratio, confidence=conf,
         vertex_areas=np.asarray(baseline.vertex_areas, dtype=np.float64), rigid=pose.matrix,
         baseline_volume_mm3=float(baseline.volume), followup_volume_mm3=float(followup.volume),
         baseline_area_mm2=float(baseline.area), followup_area_mm2=float(followup.area),
         labels=lab, region_names=dict(names or {}), info=info)
+    # plain-sentence warnings: implausible sizes, mixed units, a large residual (plausibility)
+    info["warnings"] = (pair_warnings(baseline, followup, corr.rigid.rms)
+                        + change_value_warnings(report.volume_change_percent,
+                                                report.area_change_percent))
+    return report

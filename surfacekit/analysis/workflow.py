@@ -17,6 +17,7 @@ from ..correspondence.result import Correspondence
 from ..mesh.surface import Surface, SurfaceError
 from .change import ChangeReport, measure_change
 from .labels import transfer_labels
+from .plausibility import scale_warnings
 
 
 @dataclass
@@ -39,6 +40,12 @@ class Comparison:
     labels: np.ndarray | None = None
     label_confidence: np.ndarray | None = None
     template_correspondence: Correspondence | None = None
+
+    @property
+    def warnings(self) -> list[str]:
+        """Plain-sentence warnings about the inputs and the result (implausible sizes, mixed
+        units, a large alignment residual), as in ``change.summary()["warnings"]``."""
+        return list(self.change.info.get("warnings", []))
 
 
 def same_triangulation(a: Surface, b: Surface) -> bool:
@@ -116,5 +123,7 @@ def compare(baseline: Surface, followup: Surface, *, options: MatchOptions | Non
         raise ValueError("template_labels were given without their template")
     start = _tick(timings, "labels", start)
     change = measure_change(baseline, followup, corr, labels=labels, names=region_names)
+    if template is not None:  # a template in other units than the baseline
+        change.info["warnings"] += scale_warnings(baseline, template, ("baseline", "region template"))
     _tick(timings, "change", start)
     return Comparison(corr, change, labels, confidence, template_corr)

@@ -27,8 +27,8 @@ def is_volume(path: Path) -> bool:
     return path.name.lower().endswith(VOLUME_SUFFIXES)
 
 
-def load_surface(path: str, what: str = "mesh"):
-    """Load a mesh for a command; bad files become one-line input errors."""
+def load_surface(path: str, what: str = "mesh", units="mm"):
+    """Load a mesh for a command, in `units` scaled to mm; bad files become one-line input errors."""
     from ..io.files import load
 
     p = existing(path, what)
@@ -37,7 +37,7 @@ def load_surface(path: str, what: str = "mesh"):
     if not p.name.lower().endswith(MESH_SUFFIXES):
         raise InputError(f"unsupported {what} format: {p.name} (use {', '.join(MESH_SUFFIXES)})")
     try:
-        return load(p)
+        return load(p, units)
     except SurfaceError as exc:
         raise InputError(f"cannot read {p.name}: {exc}") from None
 
@@ -48,7 +48,8 @@ def input_record(path: Path, surface=None) -> dict:
     h = hashlib.sha256(path.read_bytes()).hexdigest()[:16] if path.is_file() else ""
     rec = {"file": path.name, "sha256 (first 16)": h}
     if surface is not None:
-        rec.update(vertices=surface.n_vertices, faces=surface.n_faces)
+        rec.update(vertices=surface.n_vertices, faces=surface.n_faces,
+                   units=surface.metadata.get("units", "mm"))
     return rec
 
 

@@ -26,27 +26,33 @@ from .cli_util import (
     without_timings,
 )
 from .context import Command, Context, InputError
+from .unit_options import add_units_option, say_warnings, units_for
 
 
 # ---------------------------------------------------------------- inspect
 def _inspect_args(p):
     p.add_argument("mesh", help="surface mesh (.ply .obj .stl .off .gii .vtk .npz)")
     p.add_argument("-o", "--output", help="also write the quality summary to this .json file")
+    add_units_option(p)
 
 
 def _inspect(ctx: Context) -> dict:
+    from ..analysis.plausibility import size_warnings
     from ..preparation import quality_report
 
+    units = units_for(ctx.args.units, ["mesh"])[0]
     target = ctx.outputs.claim(ctx.args.output, suffixes=(".json",)) if ctx.args.output else None
-    s = load_surface(ctx.args.mesh)
-    summary = {"input": Path(ctx.args.mesh).name, **surface_facts(s)}
+    s = load_surface(ctx.args.mesh, units=units)
+    summary = {"input": Path(ctx.args.mesh).name, "units": units, **surface_facts(s)}
     quality = quality_report(s)
     summary["quality"] = {k: v for k, v in quality.to_dict().items() if k != "warnings"}
-    summary["warnings"] = list(quality.warnings)
+    plausibility = size_warnings(s, Path(ctx.args.mesh).name)
+    summary["warnings"] = list(quality.warnings) + plausibility
     if target is not None:
         write_json(target, summary)
-    for w in summary["warnings"]:
+    for w in quality.warnings:
         ctx.say(f"surfacekit: quality warning: {w}")
+    say_warnings(ctx, plausibility)
     return summary
 
 
@@ -59,9 +65,11 @@ def _prepare_args(p):
     p.add_argument("--target-vertices", type=int, default=None,
                    help="resample to about this many vertices (default: keep)")
     p.add_argument("--no-smooth", action="store_true", help="never smooth")
+    add_units_option(p)
 
 
 def _prepare(ctx: Context) -> dict:
+    from ..analysis.plausibility import size_warnings
     from ..io import save
     from ..preparation import from_segmentation, prepare
 
@@ -70,18 +78,25 @@ def _prepare(ctx: Context) -> dict:
         raise InputError(f"--target-vertices must be at least 100, got {a.target_vertices}")
     target = ctx.outputs.claim(a.output, suffixes=MESH_SUFFIXES)
     src = existing(a.input)
+    units = units_for(a.units, ["input"])[0]
+    if is_volume(src) and units != "mm":
+        raise InputError("--units applies to mesh inputs; a label volume is placed in mm by its "
+                         "own voxel size and orientation")
     with ctx.progress(2, "prepare") as bar:
         if is_volume(src):
             surface = from_segmentation(src, a.label)
         else:
-            surface = load_surface(a.input)
+            surface = load_surface(a.input, units=units)
         bar.update()
         prepared, report = prepare(surface, target_vertices=a.target_vertices,
                                    smooth=False if a.no_smooth else None)
         bar.update()
     save(prepared, target)
-    return {"input": src.name, "output": str(a.output), "before": surface_facts(surface),
-            "after": surface_facts(prepared), "steps": report.to_dict()}
+    warnings = size_warnings(surface, src.name)
+    say_warnings(ctx, warnings)
+    return {"input": src.name, "output": str(a.output), "units": {"input": units, "output": "mm"},
+            "before": surface_facts(surface), "after": surface_facts(prepared),
+            "steps": report.to_dict(), "warnings": warnings}
 
 
 # ---------------------------------------------------------------- describe
@@ -89,9 +104,11 @@ def _describe_args(p):
     p.add_argument("mesh", help="surface mesh")
     p.add_argument("-o", "--output", required=True, help="output .npz of per-vertex descriptors")
     p.add_argument("--eigenpairs", type=int, default=100, help="Laplace–Beltrami eigenpairs (default 100)")
+    add_units_option(p)
 
 
 def _describe(ctx: Context) -> dict:
+    from ..analysis.plausibility import size_warnings
     from ..io import save_fields
     from ..mesh.descriptors import (
         gaussian_curvature,
@@ -104,10 +121,13 @@ def _describe(ctx: Context) -> dict:
     a = ctx.args
     if a.eigenpairs < 2:
         raise InputError(f"--eigenpairs must be at least 2, got {a.eigenpairs}")
+    units = units_for(a.units, ["mesh"])[0]
     target = ctx.outputs.claim(a.output, suffixes=(".npz",))
-    s = load_surface(a.mesh)
+    s = load_surface(a.mesh, units=units)
     if a.eigenpairs >= s.n_vertices:
         raise InputError(f"--eigenpairs {a.eigenpairs} must be below the vertex count {s.n_vertices}")
+    warnings = size_warnings(s, Path(a.mesh).name)
+    say_warnings(ctx, warnings)
     arrays = {}
     with ctx.progress(4, "describe") as bar:
         basis = eigenbasis(s, a.eigenpairs)
@@ -121,9 +141,9 @@ def _describe(ctx: Context) -> dict:
         arrays["gaussian_curvature"] = gaussian_curvature(s)
         bar.update()
     save_fields(target, **arrays)
-    return {"input": Path(a.mesh).name, "output": str(a.output),
+    return {"input": Path(a.mesh).name, "output": str(a.output), "units": units,
             "arrays": {k: list(np.shape(v)) for k, v in arrays.items()},
-            "first_eigenvalues_per_mm2": [float(x) for x in basis.values[:5]]}
+            "first_eigenvalues_per_mm2": [float(x) for x in basis.values[:5]], "warnings": warnings}
 
 
 # ---------------------------------------------------------------- match
@@ -138,6 +158,7 @@ def _match_args(p):
                    help="known pairs: CSV with source_vertex,target_vertex columns (or two bare "
                         "integer columns), or NPZ as written by the landmark export; 2-3 pairs fix "
                         "near-symmetric organs")
+    add_units_option(p, ("source", "target"))
 
 
 def _match_options(pose: str, landmarks: str | None = None):
@@ -171,32 +192,41 @@ def _map_summary(corr) -> dict:
 
 
 def _match(ctx: Context) -> dict:
+    from ..analysis.plausibility import pair_warnings
     from ..correspondence import solver
 
     a = ctx.args
+    units = units_for(a.units, ("source", "target"))
     target_path = ctx.outputs.claim(a.output, suffixes=(".npz",))
     report_path = ctx.outputs.claim(a.report, suffixes=(".html",)) if a.report else None
-    src, tgt = load_surface(a.source, "source"), load_surface(a.target, "target")
+    src = load_surface(a.source, "source", units=units[0])
+    tgt = load_surface(a.target, "target", units=units[1])
     t0 = time.perf_counter()
     corr = solver.match(src, tgt, _match_options(a.pose, a.landmarks), seed=a.seed)
     seconds = time.perf_counter() - t0
     without_timings(corr)
     corr.save(target_path)
-    summary = {"source": Path(a.source).name, "target": Path(a.target).name,
-               "output": str(a.output), **_map_summary(corr), "seconds": round(seconds, 2)}
+    names = (Path(a.source).name, Path(a.target).name)
+    warnings = pair_warnings(src, tgt, corr.rigid.rms, names)
+    say_warnings(ctx, warnings)
+    summary = {"source": names[0], "target": names[1], "output": str(a.output),
+               "units": {"source": units[0], "target": units[1]}, **_map_summary(corr),
+               "alignment_rms_mm": float(corr.rigid.rms), "warnings": warnings,
+               "seconds": round(seconds, 2)}
     if report_path is not None:
         from .report import write_report
         from .views import correspondence_panel
 
-        names = (Path(a.source).name, Path(a.target).name)
         write_report(report_path, title="surfacekit correspondence report",
                      subtitle=f"{names[0]} → {names[1]}",
                      panels=[correspondence_panel(names[0], src, names[1], tgt, corr)],
-                     summary={k: v for k, v in summary.items() if k != "seconds"},
+                     summary={k: v for k, v in summary.items() if k not in ("seconds", "warnings")},
+                     warnings=warnings,
                      provenance={"inputs": [input_record(Path(a.source), src),
                                             input_record(Path(a.target), tgt)],
                                  "options": {"pose": a.pose, "seed": a.seed,
-                                             "landmarks": a.landmarks or "none"},
+                                             "landmarks": a.landmarks or "none",
+                                             "units": ",".join(units)},
                                  "timings (s)": {"match": round(seconds, 2)}})
     return summary
 
@@ -213,14 +243,15 @@ def _change_args(p):
     p.add_argument("--pose", choices=("auto", "same", "any"), default="auto", help="as for 'match'")
     p.add_argument("--landmarks", metavar="PAIRS", help="known vertex pairs, as for 'match'")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report and figures")
+    add_units_option(p, ("baseline", "follow-up", "region template"))
 
 
-def load_regions(path: str, field: str):
-    """A template surface and its integer per-vertex region labels."""
+def load_regions(path: str, field: str, units="mm"):
+    """A template surface (in `units`, scaled to mm) and its integer per-vertex region labels."""
     from ..io import load_with_fields
 
     p = existing(path, "region template")
-    template, fields = load_with_fields(p)
+    template, fields = load_with_fields(p, units)
     if field not in fields:
         raise InputError(f"{p.name} has no per-vertex field {field!r} (fields: "
                          f"{', '.join(sorted(fields)) or 'none'})")
@@ -261,15 +292,18 @@ def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
     (base, follow), rep, corr = surfaces, result.change, result.correspondence
     names = (Path(a.baseline).name, Path(a.followup).name)
     regional = rep.regional_table() if result.labels is not None else None
+    summary = rep.summary()
+    warnings = summary.pop("warnings")
     write_report(out / "report.html", title="surfacekit change report",
                  subtitle=f"{names[0]} → {names[1]}",
                  panels=[change_panel(names[0], base, names[1], follow, corr, rep, result.labels)],
-                 summary=rep.summary(), tables={"Regions": regional} if regional else None,
+                 summary=summary, warnings=warnings, tables={"Regions": regional} if regional else None,
                  figures=change_figures(base, rep, regional, corr), figure_dir=out / "figures",
                  provenance={"inputs": [input_record(Path(a.baseline), base),
                                         input_record(Path(a.followup), follow)],
                              "options": {"pose": a.pose, "seed": a.seed,
-                                         "map": a.map or "", "regions": a.regions or ""},
+                                         "map": a.map or "", "regions": a.regions or "",
+                                         "units": a.units},
                              "timings (s)": {k: round(v, 2) for k, v in timings.items()}})
 
 
@@ -277,12 +311,17 @@ def _change(ctx: Context) -> dict:
     from ..analysis.workflow import compare
 
     a = ctx.args
+    meshes = ("baseline", "follow-up", "region template")[:3 if a.regions else 2]
+    units = units_for(a.units, meshes, optional_last=bool(a.regions))
+    a.units = ",".join(units)
     out = ctx.outputs.claim(a.output, directory=True)
-    base, follow = load_surface(a.baseline, "baseline"), load_surface(a.followup, "follow-up")
+    base = load_surface(a.baseline, "baseline", units=units[0])
+    follow = load_surface(a.followup, "follow-up", units=units[1])
     if a.map and a.landmarks:
         raise InputError("--landmarks has no effect with --map (the map is already made); give one of them")
     corr = _load_map(a.map, base, follow) if a.map else None
-    template, template_labels = load_regions(a.regions, a.region_field) if a.regions else (None, None)
+    template, template_labels = (load_regions(a.regions, a.region_field, units[2]) if a.regions
+                                 else (None, None))
     timings: dict[str, float] = {}
     with ctx.progress(3, "change") as bar:
         # one match per pair of surfaces, all with the user's pose, landmarks and seed
@@ -295,8 +334,10 @@ def _change(ctx: Context) -> dict:
         if not a.no_report:
             _change_report(out, a, (base, follow), result, timings)
         bar.update()
+    say_warnings(ctx, result.warnings)
     return {"baseline": Path(a.baseline).name, "followup": Path(a.followup).name,
-            "output": str(a.output), **result.change.summary(), **_map_summary(result.correspondence)}
+            "output": str(a.output), "units": dict(zip(meshes, units)), **result.change.summary(),
+            **_map_summary(result.correspondence)}
 
 
 COMMANDS = [

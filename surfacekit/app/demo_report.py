@@ -117,7 +117,7 @@ def write_demo_report(out: Path, *, base, follow, follow_mesh, result, corr_mesh
                  subtitle="Invented, synthetic data. " + " ".join(
                      scenario.split("\n\n")[1:2]).replace("\n", " "),
                  panels=panels, summary=summary, tables=tables, figures=figures,
-                 figure_dir=out / "figures", provenance=provenance)
+                 figure_dir=out / "figures", provenance=provenance, warnings=result.warnings)
     for fig in figures.values():
         rfig.close(fig)
     return summary

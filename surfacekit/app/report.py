@@ -149,7 +149,7 @@ _JS = """
 def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
                  summary: dict | None = None, tables: dict[str, Sequence[dict]] | None = None,
                  figures: dict[str, Any] | None = None, provenance: dict | None = None,
-                 figure_dir=None, subtitle: str = "") -> Path:
+                 figure_dir=None, subtitle: str = "", warnings: Sequence[str] = ()) -> Path:
     """Write a single-file HTML report (no network needed to view it).
 
     Parameters
@@ -158,6 +158,8 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
     title, subtitle : page heading (escaped)
     panels : interactive 3D views (:class:`ReportPanel`)
     summary : headline numbers, shown as a name/value table
+    warnings : plain sentences shown in a box at the top (implausible sizes, mixed
+        units, a large alignment residual: see :mod:`surfacekit.analysis.plausibility`)
     tables : ``{caption: rows}`` with rows a list of dicts
     figures : ``{caption: matplotlib Figure or PNG bytes}``; embedded as base64 and,
         when ``figure_dir`` is given, also written there as ``<slug>.png`` for print
@@ -175,6 +177,10 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
              f"<title>{esc(title)}</title><style>{_css()}</style></head><body>")
     page.add(f"<header><h1>{esc(title)}</h1><div class='sub'>{esc(subtitle)}</div></header><main>")
     page.add(f"<div class='caution' role='note'>{esc(RESEARCH_NOTE)}</div>")
+    if warnings:
+        items = "".join(f"<li>{esc(w)}</li>" for w in warnings)
+        page.add(f"<section class='warnings' id='sk-warnings' role='alert'><h2>Warnings "
+                 f"({len(warnings)})</h2><ul>{items}</ul></section>")
     if summary:
         page.add(f"<section><h2>Summary</h2>{html_table(summary)}</section>")
     specs = []

@@ -25,6 +25,7 @@ from .npz import read_npz_arrays, read_npz_mesh, write_npz
 from .parsing import FIELD_NAME
 from .ply import read_ply, write_ply
 from .simple import read_obj, read_off, read_stl, write_obj, write_off, write_stl
+from .units import parse_units
 from .vtk import read_vtk, write_vtk
 
 MESH_SUFFIXES = (".ply", ".obj", ".stl", ".off", ".gii", ".vtk", ".npz")
@@ -131,27 +132,34 @@ def _align_sidecar(vertices: np.ndarray, side: dict) -> dict:
     return {k: np.asarray(v)[idx] for k, v in fields.items()}
 
 
-def load_with_fields(path) -> tuple[Surface, dict]:
+def load_with_fields(path, units="mm") -> tuple[Surface, dict]:
     """Read a surface and its per-vertex fields.
 
     Parameters
     ----------
     path : str or Path
         A ``.ply .obj .stl .off .gii .vtk .npz`` file.
+    units : "mm" (default), "cm", "m", or the size in mm of one file unit (e.g. the
+        voxel size of a surface stored in voxel units).  The vertices are scaled
+        to millimetres; per-vertex fields are returned as stored.
 
     Returns
     -------
     (Surface, dict)
-        The surface (``metadata["source"]`` is the path, ``metadata["format"]``
-        the format read) and ``{name: (n,) or (n, k) array}``.
+        The surface in mm (``metadata["source"]`` is the path, ``metadata["format"]``
+        the format read, ``metadata["units"]`` the unit of the file and
+        ``metadata["mm_per_unit"]`` the factor applied) and
+        ``{name: (n,) or (n, k) array}``.
 
     Raises
     ------
     SurfaceError
         Missing, empty, truncated, mislabelled or malformed files; non-finite
-        coordinates; face indices out of range; no faces; only degenerate faces.
+        coordinates; face indices out of range; no faces; only degenerate faces;
+        unknown units.
     """
     path = Path(path)
+    unit_name, scale = parse_units(units)
     suffix = path.suffix.lower()
     if suffix not in MESH_SUFFIXES:
         raise SurfaceError(f"unsupported mesh format {suffix or '(none)'!r} for {path.name} "
@@ -191,12 +199,20 @@ def load_with_fields(path) -> tuple[Surface, dict]:
         fields = validate_fields(fields, surface.n_vertices)
     except SurfaceError as exc:
         raise SurfaceError(f"{path.name}: {exc}") from None
-    return surface, fields
+    meta = {**surface.metadata, "units": unit_name, "mm_per_unit": scale}
+    if scale == 1.0:
+        surface.metadata = meta
+        return surface, fields
+    vertices = surface.vertices * scale
+    if not np.all(np.isfinite(vertices)):
+        raise SurfaceError(f"{path.name}: coordinates overflow when scaled by {scale:g} to mm")
+    return surface.copy_with(vertices=vertices, metadata=meta), fields
 
 
-def load(path) -> Surface:
-    """Read a surface mesh (.ply .obj .stl .off .gii .vtk .npz); unreadable input raises SurfaceError."""
-    return load_with_fields(path)[0]
+def load(path, units="mm") -> Surface:
+    """Read a surface mesh (.ply .obj .stl .off .gii .vtk .npz) in `units` (mm, cm, m or mm
+    per file unit), scaled to millimetres; unreadable input raises SurfaceError."""
+    return load_with_fields(path, units)[0]
 
 
 # ------------------------------------------------------------------------------ writing
