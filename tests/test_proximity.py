@@ -2,7 +2,14 @@
 import numpy as np
 
 import surfacekit as sk
-from surfacekit.mesh.proximity import near_faces, outward_vertex_normals, project_pairs, ring_faces
+from surfacekit.mesh.proximity import (
+    closest_on_faces,
+    near_faces,
+    nearest_corner,
+    outward_vertex_normals,
+    project_pairs,
+    ring_faces,
+)
 
 
 def _segment_closest(p, a, c):
@@ -57,3 +64,19 @@ def test_outward_normals_of_an_inward_wound_sphere():
     for surf in (s, inward):
         n = outward_vertex_normals(surf)
         assert np.all(np.einsum("ij,ij->i", n, surf.vertices) > 0)
+
+
+def test_closest_point_names_its_face_and_nearest_corner():
+    """The closest point returned lies on the face returned (its distance to that face alone
+    is zero), and the corner named is the nearest of that face's three."""
+    s = sk.synthetic.icosphere(3, radius=10.0)
+    p = s.vertices * 1.05 + np.random.default_rng(1).normal(0, 0.3, s.vertices.shape)
+    pairs = near_faces(s, np.arange(s.n_vertices), rings=1)
+    foot, face = closest_on_faces(p, s.vertices, s.faces, pairs)
+    np.testing.assert_array_equal(foot, project_pairs(p, s.vertices, s.faces, pairs))
+    alone = project_pairs(foot, s.vertices, s.faces, (np.arange(len(p)), face))
+    np.testing.assert_allclose(alone, foot, atol=1e-9)
+    corner = nearest_corner(foot, s.vertices, s.faces, face)
+    d = np.linalg.norm(s.vertices[s.faces[face]] - foot[:, None], axis=2)
+    assert np.all(np.any(s.faces[face] == corner[:, None], axis=1))
+    np.testing.assert_allclose(np.linalg.norm(s.vertices[corner] - foot, axis=1), d.min(axis=1))

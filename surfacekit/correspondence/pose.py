@@ -8,11 +8,12 @@ change analysis is fitted once, robustly, to the final map.
 from __future__ import annotations
 
 import numpy as np
+from scipy.spatial.transform import Rotation
 
-from ..mesh.proximity import near_faces, outward_vertex_normals, project_pairs
+from ..mesh.proximity import closest_on_faces, near_faces, nearest_corner, outward_vertex_normals
 from ..mesh.surface import Surface
 from . import tuning
-from .alignment import Transform, rigid_transform
+from .alignment import MAD_TO_SD, TUKEY_C, Transform, rigid_transform
 from .candidates import Candidate
 from .shapes import ShapeState
 
@@ -47,43 +48,92 @@ def deformation_mm(src: ShapeState, tgt: ShapeState, cand: Candidate) -> np.ndar
 
 
 def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
-               weights: np.ndarray, *, rounds: int = tuning.POSE_REFINE_ROUNDS,
-               tol_mm: float = tuning.POSE_REFINE_TOLERANCE_MM,
-               rings: int = tuning.POSE_REFINE_RINGS) -> tuple[Transform, int]:
+               weights: np.ndarray, *, rounds: int = tuning.POSE_ROUNDS,
+               tol_mm: float = tuning.POSE_TOLERANCE_MM, tol_rad: float = tuning.POSE_TOLERANCE_RAD,
+               rings: int = tuning.POSE_SEARCH_RINGS,
+               follow_rings: int = tuning.POSE_FOLLOW_RINGS) -> tuple[Transform, int]:
     """The rigid pose of a map, robust to a changing region: source -> target, mm.
 
-    First a confidence-weighted Kabsch fit of the matched vertex pairs (Kabsch,
+    Start: a confidence-weighted Kabsch fit of the matched vertex pairs (Kabsch,
     Acta Cryst. A 1976), made robust by Tukey-biweight reweighting (see
-    :func:`~.alignment.rigid_transform`), so a growing region gets weight ~0.
-    A vertex-level map is off by up to an edge (and by smooth tangential drift
-    near changing regions), which tilts such a pose; so it is refined by
-    point-to-surface rounds along the source normals.  Each round finds, for
-    every source vertex, its closest point on the target faces near its matched
-    vertex (`rings` rings), keeps only the offset along the source normal (a
-    point-to-plane step in the spirit of Chen & Medioni, Image Vision Comput.
-    1992, with the search limited by the map), and refits the robust pose.
-    Tangential offsets are not used: on near-symmetric shapes (a growing sphere)
-    closest points would let the pose slide; the tangential pose comes from the map.
+    :func:`~.alignment.rigid_transform`).  A vertex-level map is off by up to an
+    edge, and drifts tangentially near a changing region, which tilts that pose;
+    so it is refined by robust point-to-plane ICP (Chen & Medioni, Image Vision
+    Comput. 1992): each round finds, for every source vertex, the closest point
+    on the target faces near its matched vertex (`rings` rings; the map bounds
+    the search; later rounds search `follow_rings` rings around the target vertex
+    nearest the last closest point), and :func:`plane_step` solves the small-angle linearised
+    point-to-plane least squares (Low, UNC Tech. Rep. TR04-004, 2004) with
+    Tukey weights on the offsets along the source normals (Beaton & Tukey,
+    Technometrics 1974) times `weights`.  Directions the planes barely constrain
+    (the turns of a near-sphere) keep the map's pose: the pose never slides
+    along a symmetry.  Rounds stop when a step moves no source vertex by more
+    than `tol_mm` and turns by less than `tol_rad`, or after `rounds`.
 
     The fit runs target -> source, in the source's frame, as change analysis
     measures it; the inverse is returned, so ``pose.inverse()`` brings the target
     into the source frame.  weights (n_source,) in [0, 1], e.g. the map's source
     confidence.  Returns ``(pose, rounds used)``; the pose's ``weights`` are the
-    final robust weights per source vertex and ``rms`` the residual (mm) of the
-    last round.
+    final robust weights per source vertex (max 1), ``rms`` the weighted RMS
+    point-to-plane offset (mm) and ``n_iter`` the rounds used.
     """
-    to_source = rigid_transform(target.vertices[source_to_target], source.vertices, weights=weights)
+    x = source.vertices
+    to_source = rigid_transform(target.vertices[source_to_target], x, weights=weights)
     pairs = near_faces(target, source_to_target, rings)
     normals = outward_vertex_normals(source)
-    moved = to_source.apply(target.vertices)
-    used = 0
+    w, rms, used = to_source.weights, to_source.rms, 0
     for used in range(1, rounds + 1):
-        foot = project_pairs(source.vertices, moved, target.faces, pairs)
-        h = np.einsum("ij,ij->i", foot - source.vertices, normals)
-        goal = source.vertices + h[:, None] * normals
-        step = rigid_transform(goal, source.vertices, weights=weights)
+        foot, face = closest_on_faces(to_source.inverse().apply(x), target.vertices, target.faces, pairs)
+        pairs = near_faces(target, nearest_corner(foot, target.vertices, target.faces, face), follow_rings)
+        step, w, rms = plane_step(x, to_source.apply(foot), normals, weights, tol_mm)
         to_source = to_source.then(step)
-        moved = to_source.apply(target.vertices)
-        if np.abs(step.apply(source.vertices) - source.vertices).max() < tol_mm:
+        turn = np.arccos(np.clip((np.trace(step.rotation) - 1.0) / 2.0, -1.0, 1.0))
+        if np.abs(step.apply(x) - x).max() < tol_mm and turn < tol_rad:
             break
-    return to_source.inverse(), used
+    wmax = w.max()
+    fitted = Transform(to_source.rotation, to_source.translation, 1.0,
+                       w / wmax if wmax > 0 else w, float(rms), used)
+    return fitted.inverse(), used
+
+
+def plane_step(points: np.ndarray, feet: np.ndarray, normals: np.ndarray, weights: np.ndarray,
+               tol_mm: float, max_iter: int = tuning.POSE_REWEIGHTINGS) -> tuple[Transform, np.ndarray, float]:
+    """The small rigid motion bringing `feet` onto the tangent planes of `points`, robustly.
+
+    Minimises ``Σ w_i (n_i · (q_i + ω × (q_i - c) + t - x_i))²`` over the rotation
+    vector ω and translation t: the point-to-plane objective linearised for a
+    small angle (Low, UNC Tech. Rep. TR04-004, 2004), about the weighted centroid
+    c, solved as 6 x 6 normal equations with ω scaled by the RMS radius.  The
+    weights are `weights` times Tukey's biweight of the offsets, robust scale
+    1.4826·MAD (Beaton & Tukey, Technometrics 1974), re-solved until the step
+    changes by less than `tol_mm` (iteratively reweighted least squares; the
+    offsets are linear in the step, so no new closest points are needed).
+    Directions whose curvature is below POSE_WEAK_DIRECTION of the strongest get
+    no update.  points, feet, normals (n, 3); weights (n,).  Returns the step
+    (exact rotation by ω), the final weights and their weighted RMS offset (mm).
+    """
+    centre = weights @ points / weights.sum()
+    radius = float(np.sqrt(weights @ np.sum((points - centre) ** 2, axis=1) / weights.sum())) or 1.0
+    J = np.hstack([np.cross(feet - centre, normals) / radius, normals])
+    r0 = np.einsum("ij,ij->i", feet - points, normals)
+    floor = 1e-9 * radius
+    delta = np.zeros(6)
+    for _ in range(max_iter):
+        r = r0 + J @ delta
+        sigma = max(MAD_TO_SD * float(np.median(np.abs(r[weights > 0]))), floor)
+        u = r / (TUKEY_C * sigma)
+        w = weights * np.where(np.abs(u) < 1.0, (1.0 - u * u) ** 2, 0.0)
+        if not w.sum() > 0:
+            w = weights
+        A = (J * w[:, None]).T @ J
+        vals, vecs = np.linalg.eigh(A)
+        keep = vals > tuning.POSE_WEAK_DIRECTION * vals[-1]
+        new = vecs[:, keep] @ ((vecs[:, keep].T @ (-(J * w[:, None]).T @ r0)) / vals[keep])
+        done = np.abs(new - delta).max() < 0.1 * tol_mm
+        delta = new
+        if done:
+            break
+    r = r0 + J @ delta
+    turn = Rotation.from_rotvec(delta[:3] / radius).as_matrix()
+    step = Transform(turn, centre - turn @ centre + delta[3:])
+    return step, w, float(np.sqrt(w @ r**2 / w.sum())) if w.sum() > 0 else 0.0

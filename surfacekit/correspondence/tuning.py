@@ -90,15 +90,29 @@ ROOM_ABOVE = 2.0
 RIVAL_WITHIN = 1.05
 
 # ---------------------------------------------------------------- the rigid pose for change analysis
-#: at most this many point-to-surface rounds refine the rigid pose of the final map: the value
-#: change analysis has always used.  Measured on the demo pair (sample_meshes/demo): the rounds
-#: do not reach POSE_REFINE_TOLERANCE_MM; the pose after round 1 lies 0.85 mm (largest vertex
-#: shift) from the pose after round 10, and it keeps creeping, 0.35 mm more from round 10 to
-#: round 20, so the cap also bounds that drift.
-POSE_REFINE_ROUNDS = 10
-#: a round that moves no source vertex by more than this (mm) ends the refinement: far below
-#: the resolution of clinical scans (0.5-1 mm voxels, common practice).
-POSE_REFINE_TOLERANCE_MM = 1e-3
+#: at most this many closest-point rounds of the point-to-plane ICP that refines the rigid
+#: pose of the final map (correspondence.pose.rigid_pose).  Measured on held-out growth pairs
+#: (benchmarks/bench_pose.py): 3-8 rounds reach POSE_TOLERANCE_MM; the cap only bounds a
+#: surface that never settles.
+POSE_ROUNDS = 20
+#: a round whose step moves no source vertex by more than this (mm) and turns by less than
+#: POSE_TOLERANCE_RAD ends the refinement: far below the resolution of clinical scans
+#: (0.5-1 mm voxels, common practice).
+POSE_TOLERANCE_MM = 1e-4
+POSE_TOLERANCE_RAD = 1e-6
 #: vertex rings around the matched target vertex whose faces are searched for the closest
-#: point: a vertex-level map is off by about one edge, two rings cover that with margin.
-POSE_REFINE_RINGS = 2
+#: point in the first round: a vertex-level map is off by about one edge.  Measured on the
+#: held-out growth pairs: 2 rings (54 faces a vertex) give the same pose as 1 ring (24 faces)
+#: to 0.001 mm, 0 rings (6 faces) up to 0.5 mm worse.
+POSE_SEARCH_RINGS = 1
+#: later rounds search the faces within this many rings of the target vertex nearest the
+#: last closest point, a window that follows the closest points as the pose settles; 0
+#: rings was up to 0.1 mm worse and slower to settle on the benchmark pairs.
+POSE_FOLLOW_RINGS = 1
+#: Tukey reweightings per round at most (the offsets are linear in the step, so they are
+#: cheap); measured 20-60 to settle to 1e-5 mm on the benchmark pairs.
+POSE_REWEIGHTINGS = 200
+#: point-to-plane curvature, relative to the strongest direction, below which a direction
+#: of the pose is left to the map (a sphere's turns: 0); measured at least 0.009 on the
+#: benchmark organs.
+POSE_WEAK_DIRECTION = 1e-3

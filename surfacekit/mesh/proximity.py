@@ -34,7 +34,13 @@ def near_faces(s: Surface, seeds: np.ndarray, rings: int = 2) -> tuple[np.ndarra
 
 def project_pairs(points: np.ndarray, vertices: np.ndarray, faces: np.ndarray,
                   pairs: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
-    """Closest point to each query point among its candidate faces (see `near_faces`), (k, 3).
+    """Closest point to each query point among its candidate faces (see `near_faces`), (k, 3)."""
+    return closest_on_faces(points, vertices, faces, pairs)[0]
+
+
+def closest_on_faces(points: np.ndarray, vertices: np.ndarray, faces: np.ndarray,
+                     pairs: tuple[np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Closest point to each query point among its candidate faces, and the face it lies on.
 
     The point on each candidate triangle comes from trimesh's vectorised
     Voronoi-region method (Ericson, *Real-Time Collision Detection*, Morgan
@@ -54,7 +60,17 @@ def project_pairs(points: np.ndarray, vertices: np.ndarray, faces: np.ndarray,
     best = hit[first]
     out = np.empty((len(points), 3))
     out[qi[best]] = cand[best]
-    return out
+    face = np.full(len(points), -1, dtype=np.int64)
+    face[qi[best]] = fi[best]
+    return out, face
+
+
+def nearest_corner(points: np.ndarray, vertices: np.ndarray, faces: np.ndarray,
+                   face: np.ndarray) -> np.ndarray:
+    """For each point (n, 3) on its face (n,), the index of the face's nearest corner."""
+    corners = faces[face]
+    d2 = np.sum((vertices[corners] - points[:, None, :]) ** 2, axis=2)
+    return corners[np.arange(len(points)), np.argmin(d2, axis=1)]
 
 
 def outward_vertex_normals(s: Surface) -> np.ndarray:
