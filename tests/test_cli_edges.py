@@ -5,6 +5,7 @@ Meshes are small synthetic kidneys (invented shapes from ``sk.synthetic``).
 """
 from __future__ import annotations
 
+import csv
 import json
 import os
 import subprocess
@@ -160,3 +161,90 @@ def test_npz_meshes_are_accepted_by_every_command(kidney, tmp_path, capsys):
     code, _, err = run(["inspect", tmp_path / "kidney.xyz"], capsys)
     assert code == 2
     assert one_error_line(err).startswith("surfacekit: error: ")
+
+
+# ------------------------------------------------------------------ landmarks in mm
+def _write_points_csv(path: Path, src_pts, tgt_pts) -> Path:
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["source_x", "source_y", "source_z", "target_x", "target_y", "target_z"])
+        for p, q in zip(src_pts, tgt_pts):
+            w.writerow([*(f"{x:.6f}" for x in p), *(f"{x:.6f}" for x in q)])
+    return path
+
+
+def test_load_landmarks_snaps_points_to_the_nearest_vertices(tmp_path):
+    src, _ = sk.synthetic.organ_surface("kidney", 600, seed=1)
+    tgt, _ = sk.synthetic.organ_surface("kidney", 900, seed=2)
+    rng = np.random.default_rng(0)
+    sp = src.vertices[[5, 100, 300]] + rng.normal(scale=0.1, size=(3, 3))
+    tp = tgt.vertices[[50, 200, 800]] + rng.normal(scale=0.1, size=(3, 3))
+    path = _write_points_csv(tmp_path / "lm.csv", sp, tp)
+    with pytest.raises(ValueError, match="coordinates \\(mm\\); pass the source and target surfaces"):
+        sk.load_landmarks(path)
+    got = sk.load_landmarks(path, src, tgt)
+    # brute-force nearest vertex (every distance computed) as the reference
+    want = np.stack([np.linalg.norm(src.vertices[None] - sp[:, None], axis=2).argmin(1),
+                     np.linalg.norm(tgt.vertices[None] - tp[:, None], axis=2).argmin(1)], axis=1)
+    np.testing.assert_array_equal(got, want)
+    # an exported file holds indices and points: with the surfaces, the points decide
+    sk.save_landmarks({"source_index": np.array([0, 1, 2]), "target_index": np.array([3, 4, 5]),
+                       "source_xyz": sp, "target_xyz": tp, "confidence": np.ones(3)},
+                      tmp_path / "both.csv")
+    np.testing.assert_array_equal(sk.load_landmarks(tmp_path / "both.csv"), [[0, 3], [1, 4], [2, 5]])
+    np.testing.assert_array_equal(sk.load_landmarks(tmp_path / "both.csv", src, tgt), want)
+    (tmp_path / "idx.csv").write_text("source_vertex,target_vertex\n3,5\n700,2\n")
+    with pytest.raises(ValueError, match="source vertex 700 does not exist"):
+        sk.load_landmarks(tmp_path / "idx.csv", src, tgt)
+
+
+def test_landmark_points_survive_prepare_resampling(tmp_path, capsys):
+    """Points picked on the original meshes land on the same anatomy after `prepare`."""
+    src, _ = sk.synthetic.organ_surface("kidney", 1500, seed=1)
+    tgt, _ = sk.synthetic.organ_surface("kidney", 1500, seed=2)
+    sk.save(src, tmp_path / "src.ply")
+    sk.save(tgt, tmp_path / "tgt.ply")
+    picks = [0, 700, 1400]
+    lm = _write_points_csv(tmp_path / "lm.csv", src.vertices[picks], tgt.vertices[picks])
+    for name in ("src", "tgt"):
+        code, _, err = run(["prepare", tmp_path / f"{name}.ply", "-o", tmp_path / f"{name}_p.ply",
+                            "--target-vertices", "600", "-q"], capsys)
+        assert code == 0, err
+    sp, tp = sk.load(tmp_path / "src_p.ply"), sk.load(tmp_path / "tgt_p.ply")
+    pairs = sk.load_landmarks(lm, sp, tp)
+    for side, (orig, prep) in enumerate(((src, sp), (tgt, tp))):
+        moved = np.linalg.norm(prep.vertices[pairs[:, side]] - orig.vertices[picks], axis=1)
+        assert np.all(moved < 1.0 * prep.mean_edge_length), moved
+    code, out, err = run(["match", tmp_path / "src_p.ply", tmp_path / "tgt_p.ply", "--landmarks", lm,
+                          "-o", tmp_path / "map.npz", "--json"], capsys)
+    assert code == 0, err
+    summary = json.loads(out)
+    info = summary["landmarks"]
+    assert info["pairs"] == 3 and info["given_as"].startswith("coordinates (mm)")
+    assert 0 < info["source_snap_max_mm"] < 1.0 * sp.mean_edge_length
+    assert "warnings" not in info and "landmark" not in err
+    assert summary["landmark_pairs"] == 3  # the solver used them
+
+
+def test_far_landmark_is_warned_about_and_bad_indices_are_refused(kidney, tmp_path, capsys):
+    s = sk.load(kidney)
+    far = s.vertices[[10, 20]] + [[0.0, 0.0, 0.0], [0.0, 0.0, 40.0]]
+    lm = _write_points_csv(tmp_path / "lm.csv", s.vertices[[10, 20]], far)
+    code, out, err = run(["change", kidney, kidney, "--landmarks", lm, "-o", tmp_path / "c",
+                          "--no-report", "--json"], capsys)
+    assert code == 0
+    limit = 2 * s.mean_edge_length
+    info = json.loads(out)["landmarks"]
+    assert info["target_snap_max_mm"] > 20 and info["source_snap_max_mm"] == pytest.approx(0, abs=1e-5)
+    assert len(info["warnings"]) == 1
+    line = [x for x in err.splitlines() if "landmark" in x]
+    assert line == [f"surfacekit: warning: {info['warnings'][0]}"]
+    assert info["warnings"][0].startswith("landmark 2 lies ")
+    assert f"more than 2 mean edge lengths ({limit:.3g} mm)" in info["warnings"][0]
+    (tmp_path / "idx.csv").write_text("5,9\n3,99999\n")
+    code, _, err = run(["match", kidney, kidney, "--landmarks", tmp_path / "idx.csv", "-o",
+                        tmp_path / "m.npz"], capsys)
+    assert code == 2
+    assert one_error_line(err) == ("surfacekit: error: idx.csv: target vertex 99999 does not exist "
+                                   f"(the target surface has {s.n_vertices} vertices)")
+    assert not (tmp_path / "m.npz").exists()

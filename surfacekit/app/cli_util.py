@@ -3,6 +3,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
+
 from ..io.files import MESH_SUFFIXES as LIBRARY_MESH_SUFFIXES
 from ..mesh.surface import SurfaceError
 from .context import InputError
@@ -81,3 +83,51 @@ def without_timings(result):
         result.info = strip(info)
         return timings
     return {}
+
+
+#: a landmark farther than this many mean edge lengths from its nearest vertex is reported
+LANDMARK_SNAP_LIMIT = 2.0
+
+
+def landmark_pairs(path: str | None, source, target) -> tuple[tuple, dict]:
+    """Landmark vertex pairs for a command, and what the summary says about them.
+
+    Points in mm are snapped to the nearest vertex of each surface; the largest
+    snapping distance per side is reported, and a point farther than
+    :data:`LANDMARK_SNAP_LIMIT` mean edge lengths from its surface is warned about
+    (it probably has the wrong coordinates, units or side).
+    """
+    import warnings
+
+    from ..correspondence.landmark_files import (
+        check_landmark_indices,
+        read_landmark_file,
+        snap_landmarks,
+    )
+
+    if path is None:
+        return (), {}
+    p = existing(path, "landmark file")
+    try:
+        pairs, points = read_landmark_file(p)
+        if points is None:
+            check_landmark_indices(pairs, source, target, p.name)
+            info = {"pairs": len(pairs), "given_as": "vertex indices"}
+            return tuple(map(tuple, pairs.tolist())), {"landmarks": info}
+    except ValueError as exc:
+        raise InputError(str(exc)) from None
+    pairs, dist = snap_landmarks(points, source, target)
+    info = {"pairs": len(pairs), "given_as": "coordinates (mm), snapped to the nearest vertex"}
+    notes = []
+    for side, (surface, which) in enumerate(((source, "source"), (target, "target"))):
+        limit = LANDMARK_SNAP_LIMIT * float(surface.mean_edge_length)
+        info[f"{which}_snap_max_mm"] = float(dist[:, side].max())
+        info[f"{which}_snap_mean_mm"] = float(dist[:, side].mean())
+        notes += [f"landmark {k + 1} lies {dist[k, side]:.3g} mm from the {which} surface's nearest "
+                  f"vertex, more than {LANDMARK_SNAP_LIMIT:g} mean edge lengths ({limit:.3g} mm): "
+                  "check its coordinates and units" for k in np.flatnonzero(dist[:, side] > limit)]
+    for note in notes:
+        warnings.warn(note, stacklevel=2)
+    if notes:
+        info["warnings"] = notes
+    return tuple(map(tuple, pairs.tolist())), {"landmarks": info}

@@ -21,6 +21,7 @@ from .cli_util import (
     existing,
     input_record,
     is_volume,
+    landmark_pairs,
     load_surface,
     surface_facts,
     without_timings,
@@ -156,17 +157,20 @@ def _match_args(p):
                    help="same: both scans share orientation; any: arbitrary pose; auto (default) tries both")
     p.add_argument("--landmarks", metavar="PAIRS",
                    help="known pairs: CSV with source_vertex,target_vertex columns (or two bare "
-                        "integer columns), or NPZ as written by the landmark export; 2-3 pairs fix "
-                        "near-symmetric organs")
+                        "integer columns), or points in mm with source_x,source_y,source_z,"
+                        "target_x,target_y,target_z columns (snapped to the nearest vertices, so "
+                        "they survive resampling), or NPZ as written by the landmark export; 2-3 "
+                        "pairs fix near-symmetric organs")
     add_units_option(p, ("source", "target"))
 
 
-def _match_options(pose: str, landmarks: str | None = None):
-    from ..correspondence import MatchOptions, load_landmarks
+def _match_options(pose: str, landmarks: str | None, source, target):
+    """Match options, and the summary's note on the landmarks (points in mm are snapped)."""
+    from ..correspondence import MatchOptions
 
-    pairs = () if landmarks is None else tuple(map(tuple, load_landmarks(landmarks).tolist()))
+    pairs, info = landmark_pairs(landmarks, source, target)
     return MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose],
-                           landmarks=pairs)
+                        landmarks=pairs), info
 
 
 def _map_summary(corr) -> dict:
@@ -202,7 +206,8 @@ def _match(ctx: Context) -> dict:
     src = load_surface(a.source, "source", units=units[0])
     tgt = load_surface(a.target, "target", units=units[1])
     t0 = time.perf_counter()
-    corr = solver.match(src, tgt, _match_options(a.pose, a.landmarks), seed=a.seed)
+    options, landmark_info = _match_options(a.pose, a.landmarks, src, tgt)
+    corr = solver.match(src, tgt, options, seed=a.seed)
     seconds = time.perf_counter() - t0
     without_timings(corr)
     corr.save(target_path)
@@ -210,7 +215,7 @@ def _match(ctx: Context) -> dict:
     warnings = pair_warnings(src, tgt, corr.rigid.rms, names)
     say_warnings(ctx, warnings)
     summary = {"source": names[0], "target": names[1], "output": str(a.output),
-               "units": {"source": units[0], "target": units[1]}, **_map_summary(corr),
+               "units": {"source": units[0], "target": units[1]}, **_map_summary(corr), **landmark_info,
                "alignment_rms_mm": float(corr.rigid.rms), "warnings": warnings,
                "seconds": round(seconds, 2)}
     if report_path is not None:
@@ -241,7 +246,7 @@ def _change_args(p):
                                      "is transferred to the baseline for a regional table")
     p.add_argument("--region-field", default="region", help="name of the template's label field")
     p.add_argument("--pose", choices=("auto", "same", "any"), default="auto", help="as for 'match'")
-    p.add_argument("--landmarks", metavar="PAIRS", help="known vertex pairs, as for 'match'")
+    p.add_argument("--landmarks", metavar="PAIRS", help="known pairs (vertex indices or points in mm), as for 'match'")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report and figures")
     add_units_option(p, ("baseline", "follow-up", "region template"))
 
@@ -322,10 +327,11 @@ def _change(ctx: Context) -> dict:
     corr = _load_map(a.map, base, follow) if a.map else None
     template, template_labels = (load_regions(a.regions, a.region_field, units[2]) if a.regions
                                  else (None, None))
+    options, landmark_info = _match_options(a.pose, a.landmarks, base, follow)
     timings: dict[str, float] = {}
     with ctx.progress(3, "change") as bar:
         # one match per pair of surfaces, all with the user's pose, landmarks and seed
-        result = compare(base, follow, options=_match_options(a.pose, a.landmarks), seed=a.seed,
+        result = compare(base, follow, options=options, seed=a.seed,
                          correspondence=corr, template=template, template_labels=template_labels,
                          timings=timings)
         bar.update()
@@ -337,7 +343,7 @@ def _change(ctx: Context) -> dict:
     say_warnings(ctx, result.warnings)
     return {"baseline": Path(a.baseline).name, "followup": Path(a.followup).name,
             "output": str(a.output), "units": dict(zip(meshes, units)), **result.change.summary(),
-            **_map_summary(result.correspondence)}
+            **_map_summary(result.correspondence), **landmark_info}
 
 
 COMMANDS = [

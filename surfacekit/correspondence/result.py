@@ -1,18 +1,18 @@
 """The `Correspondence` result: dense vertex maps between two surfaces, transfer, landmarks, NPZ I/O."""
 from __future__ import annotations
 
-import csv
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from ..io.files import atomic_path, save_fields
+from ..io.files import save_fields
 from ..io.tables import json_default
 from ..mesh.surface import Surface
 from .alignment import Transform
 from .labels import vote_labels
+from .landmark_files import load_landmarks, save_landmarks  # noqa: F401  (their home before)
 from .options import MatchOptions
 
 _FORMAT_TAG = "surfacekit.correspondence/1"
@@ -282,75 +282,3 @@ class Correspondence:
             "target_xyz": np.asarray(target.vertices[t_idx], dtype=np.float64),
             "confidence": (conf[idx] if conf is not None else np.ones(n)),
         }
-
-
-def save_landmarks(landmarks: dict, path) -> Path:
-    """Write landmark pairs from :meth:`Correspondence.landmarks` to CSV or NPZ (by suffix), atomically.
-
-    The CSV has the header ``index,source_vertex,target_vertex,source_x,source_y,
-    source_z,target_x,target_y,target_z,confidence`` (coordinates in mm).
-    """
-    path = Path(path)
-    suffix = path.suffix.lower()
-    keys = ("source_index", "target_index", "source_xyz", "target_xyz", "confidence")
-    missing = [k for k in keys if k not in landmarks]
-    if missing:
-        raise ValueError(f"landmarks dict lacks {missing}")
-    if suffix == ".npz":
-        return save_fields(path, **{k: np.asarray(landmarks[k]) for k in keys})
-    if suffix != ".csv":
-        raise ValueError(f"landmark file must end in .csv or .npz, got {path.name!r}")
-    with atomic_path(path) as tmp, open(tmp, "w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["index", "source_vertex", "target_vertex", "source_x", "source_y", "source_z",
-                    "target_x", "target_y", "target_z", "confidence"])
-        for r, (i, j, p, q, c) in enumerate(zip(*(landmarks[k] for k in keys))):
-            w.writerow([r, int(i), int(j), *(f"{x:.6f}" for x in p), *(f"{x:.6f}" for x in q),
-                        f"{float(c):.4f}"])
-    return path
-
-
-def load_landmarks(path) -> np.ndarray:
-    """Read landmark pairs (source vertex, target vertex) from CSV or NPZ, (l, 2) int64.
-
-    Accepts what :func:`save_landmarks` writes (CSV with ``source_vertex`` and
-    ``target_vertex`` columns, or NPZ with ``source_index`` / ``target_index``)
-    and a plain CSV of two integer columns without header.  Problems raise
-    ValueError naming the file and the row.
-    """
-    from ..io.files import load_fields
-
-    path = Path(path)
-    if not path.is_file():
-        raise ValueError(f"no such landmark file: {path}")
-    if path.suffix.lower() == ".npz":
-        f = load_fields(path)
-        if "source_index" not in f or "target_index" not in f:
-            raise ValueError(f"{path.name}: NPZ landmark file needs 'source_index' and 'target_index' arrays")
-        pairs = np.stack([np.ravel(f["source_index"]), np.ravel(f["target_index"])], axis=1)
-    else:
-        try:
-            rows = list(csv.reader(path.read_text(encoding="utf-8").splitlines()))
-        except UnicodeDecodeError:
-            raise ValueError(f"{path.name}: landmark file is not a text CSV") from None
-        rows = [r for r in rows if r and any(c.strip() for c in r)]
-        cols = (0, 1)
-        start = 0
-        if rows and not rows[0][0].strip().lstrip("-").isdigit():  # a header
-            head = [c.strip() for c in rows[0]]
-            if "source_vertex" not in head or "target_vertex" not in head:
-                raise ValueError(f"{path.name}: landmark CSV header needs 'source_vertex' and "
-                                 "'target_vertex' columns")
-            cols, start = (head.index("source_vertex"), head.index("target_vertex")), 1
-        pairs = []
-        for n, r in enumerate(rows[start:], start=start + 1):
-            try:
-                pairs.append((int(r[cols[0]]), int(r[cols[1]])))
-            except (ValueError, IndexError):
-                raise ValueError(f"{path.name}: row {n} does not hold two vertex indices") from None
-        pairs = np.array(pairs, dtype=np.int64).reshape(-1, 2)
-    if not len(pairs):
-        raise ValueError(f"{path.name}: no landmark pairs")
-    if not np.issubdtype(pairs.dtype, np.integer) or pairs.min() < 0:
-        raise ValueError(f"{path.name}: landmark vertices must be non-negative integers")
-    return pairs.astype(np.int64)
