@@ -68,7 +68,9 @@ def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
     Technometrics 1974) times `weights`.  Directions the planes barely constrain
     (the turns of a near-sphere) keep the map's pose: the pose never slides
     along a symmetry.  Rounds stop when a step moves no source vertex by more
-    than `tol_mm` and turns by less than `tol_rad`, or after `rounds`.
+    than `tol_mm` and turns by less than `tol_rad`, when the pose is back within
+    that of the pose two rounds before (the discrete closest points of a noisy
+    surface can alternate between two sets), or after `rounds`.
 
     The fit runs target -> source, in the source's frame, as change analysis
     measures it; the inverse is returned, so ``pose.inverse()`` brings the target
@@ -82,18 +84,27 @@ def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
     pairs = near_faces(target, source_to_target, rings)
     normals = outward_vertex_normals(source)
     w, rms, used = to_source.weights, to_source.rms, 0
+    earlier = [to_source]  # the poses one and two rounds back
     for used in range(1, rounds + 1):
         foot, face = closest_on_faces(to_source.inverse().apply(x), target.vertices, target.faces, pairs)
         pairs = near_faces(target, nearest_corner(foot, target.vertices, target.faces, face), follow_rings)
         step, w, rms = plane_step(x, to_source.apply(foot), normals, weights, tol_mm)
         to_source = to_source.then(step)
-        turn = np.arccos(np.clip((np.trace(step.rotation) - 1.0) / 2.0, -1.0, 1.0))
-        if np.abs(step.apply(x) - x).max() < tol_mm and turn < tol_rad:
+        # settled, or alternating between two sets of closest points (back where it was)
+        if any(_close(to_source, pose, x, tol_mm, tol_rad) for pose in earlier):
             break
+        earlier = [to_source, earlier[0]]
     wmax = w.max()
     fitted = Transform(to_source.rotation, to_source.translation, 1.0,
                        w / wmax if wmax > 0 else w, float(rms), used)
     return fitted.inverse(), used
+
+
+def _close(a: Transform, b: Transform, points: np.ndarray, tol_mm: float, tol_rad: float) -> bool:
+    """Whether two poses move no point by more than tol_mm apart and differ by a turn below tol_rad."""
+    cos = (np.trace(a.rotation @ b.rotation.T) - 1.0) / 2.0
+    return (np.abs(a.apply(points) - b.apply(points)).max() < tol_mm
+            and np.arccos(np.clip(cos, -1.0, 1.0)) < tol_rad)
 
 
 def plane_step(points: np.ndarray, feet: np.ndarray, normals: np.ndarray, weights: np.ndarray,
