@@ -248,3 +248,91 @@ def test_far_landmark_is_warned_about_and_bad_indices_are_refused(kidney, tmp_pa
     assert one_error_line(err) == ("surfacekit: error: idx.csv: target vertex 99999 does not exist "
                                    f"(the target surface has {s.n_vertices} vertices)")
     assert not (tmp_path / "m.npz").exists()
+
+
+# ------------------------------------------------------------------ region names
+@pytest.fixture(scope="module")
+def labelled(tmp_path_factory, kidney):
+    """The kidney as its own template, with three regions along its longest axis."""
+    d = tmp_path_factory.mktemp("regions")
+    s = sk.load(kidney)
+    x = s.vertices[:, int(np.argmax(np.ptp(s.vertices, axis=0)))]
+    region = 1 + np.digitize(x, np.quantile(x, [1 / 3, 2 / 3])).astype(np.int32)
+    sk.save(s, d / "template.ply", fields={"region": region})
+    return d / "template.ply"
+
+
+NAMES = {1: "lower pole", 2: "mid zone", 3: "upper pole"}
+
+
+def _change_with_regions(kidney, labelled, out, capsys, *extra):
+    code, stdout, err = run(["change", kidney, kidney, "--regions", labelled, "-o", out, "--json",
+                             *extra], capsys)
+    return code, (json.loads(stdout) if code == 0 else None), err
+
+
+def test_region_names_from_a_csv_reach_table_report_and_summary(kidney, labelled, tmp_path, capsys):
+    from surfacekit.app.cli_util import write_region_names
+
+    names_csv = write_region_names(tmp_path / "names.csv", NAMES)
+    assert names_csv.read_text() == "label,name\n1,lower pole\n2,mid zone\n3,upper pole\n"
+    code, summary, err = _change_with_regions(kidney, labelled, tmp_path / "out", capsys,
+                                              "--region-names", names_csv)
+    assert code == 0, err
+    with open(tmp_path / "out" / "change.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert [(int(r["label"]), r["name"]) for r in rows] == sorted(NAMES.items())
+    assert summary["region_names_from"] == "names.csv"
+    assert sorted(summary["region_mean_normal_displacement_mm"]) == sorted(NAMES.values())
+    # the same surface on both sides: no displacement anywhere (to rounding)
+    assert max(abs(v) for v in summary["region_mean_normal_displacement_mm"].values()) < 1e-6
+    html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
+    for name in NAMES.values():
+        assert name in html
+    assert "region_1" not in html
+
+
+def test_region_names_from_the_template_sidecar(kidney, labelled, tmp_path, capsys):
+    from surfacekit.app.cli_util import region_names_sidecar, write_region_names
+
+    code, summary, _ = _change_with_regions(kidney, labelled, tmp_path / "plain", capsys, "--no-report")
+    assert code == 0 and summary["region_names_from"] == "none"
+    assert sorted(summary["region_mean_normal_displacement_mm"]) == ["region_1", "region_2", "region_3"]
+    side = region_names_sidecar(labelled)
+    assert side.name == "template.ply.regions.csv"
+    write_region_names(side, {1: "lower pole", 2: "mid zone"})  # one region left unnamed
+    try:
+        code, summary, err = _change_with_regions(kidney, labelled, tmp_path / "named", capsys,
+                                                  "--no-report")
+    finally:
+        side.unlink()
+    assert code == 0
+    assert summary["region_names_from"] == "template.ply.regions.csv"
+    assert sorted(summary["region_mean_normal_displacement_mm"]) == ["lower pole", "mid zone", "region_3"]
+    assert ("surfacekit: warning: template.ply.regions.csv gives no name for region label(s) 3; "
+            "they are called region_<label>") in err.splitlines()
+
+
+@pytest.mark.parametrize(("content", "message"), [
+    ("label,name\n7,left\n8,right\n", "names.csv names labels 7, 8 but the template's regions are 1, 2, 3"),
+    ("label,name\n1,a\n1,b\n", "names.csv: label 1 is named twice (rows naming it: 'a', 'b')"),
+    ("id,title\n1,a\n", "names.csv: region names CSV needs a header with 'label' and 'name' columns"),
+    ("label,name\none,a\n", "names.csv: row 2 does not hold an integer label and a name"),
+    ("label,name\n1,\n", "names.csv: row 2 has an empty name"),
+])
+def test_bad_region_names_are_one_line_errors(content, message, kidney, labelled, tmp_path, capsys):
+    (tmp_path / "names.csv").write_text(content)
+    code, _, err = _change_with_regions(kidney, labelled, tmp_path / "out", capsys,
+                                        "--region-names", tmp_path / "names.csv")
+    assert code == 2
+    assert one_error_line(err) == f"surfacekit: error: {message}"
+    assert not (tmp_path / "out").exists()
+
+
+def test_region_names_need_a_template(kidney, tmp_path, capsys):
+    (tmp_path / "names.csv").write_text("label,name\n1,a\n")
+    code, _, err = run(["change", kidney, kidney, "--region-names", tmp_path / "names.csv", "-o",
+                        tmp_path / "out"], capsys)
+    assert code == 2
+    assert one_error_line(err) == ("surfacekit: error: --region-names needs --regions "
+                                   "(the labelled template they name)")

@@ -131,3 +131,88 @@ def landmark_pairs(path: str | None, source, target) -> tuple[tuple, dict]:
     if notes:
         info["warnings"] = notes
     return tuple(map(tuple, pairs.tolist())), {"landmarks": info}
+
+
+def region_names_sidecar(template) -> Path:
+    """Where a template's region names live beside it: ``<template file>.regions.csv``."""
+    template = Path(template)
+    return template.with_name(template.name + ".regions.csv")
+
+
+def write_region_names(path, names: dict) -> Path:
+    """Write ``{label: name}`` as the CSV that ``--region-names`` reads (columns ``label,name``)."""
+    from ..io.tables import write_csv
+
+    rows = [{"label": int(k), "name": str(v)} for k, v in sorted(names.items())]
+    return write_csv(path, rows, columns=("label", "name"))
+
+
+def read_region_names(path) -> dict[int, str]:
+    """``{label: name}`` from a CSV with columns ``label,name``; bad files are one-line InputErrors."""
+    import csv
+
+    p = existing(str(path), "region names file")
+    try:
+        rows = list(csv.reader(p.read_text(encoding="utf-8").splitlines()))
+    except UnicodeDecodeError:
+        raise InputError(f"{p.name}: region names file is not a text CSV") from None
+    rows = [r for r in rows if r and any(c.strip() for c in r)]
+    head = [c.strip().lower() for c in rows[0]] if rows else []
+    if "label" not in head or "name" not in head:
+        raise InputError(f"{p.name}: region names CSV needs a header with 'label' and 'name' columns")
+    li, ni = head.index("label"), head.index("name")
+    names: dict[int, str] = {}
+    for n, r in enumerate(rows[1:], start=2):
+        try:
+            label, name = int(r[li]), r[ni].strip()
+        except (ValueError, IndexError):
+            raise InputError(f"{p.name}: row {n} does not hold an integer label and a name") from None
+        if not name:
+            raise InputError(f"{p.name}: row {n} has an empty name")
+        if label in names:
+            raise InputError(f"{p.name}: label {label} is named twice (rows naming it: "
+                             f"{names[label]!r}, {name!r})")
+        names[label] = name
+    if not names:
+        raise InputError(f"{p.name}: no region names")
+    return names
+
+
+def region_names_for(names_file, template_file, labels: np.ndarray) -> tuple[dict[int, str], str]:
+    """Names of the template's regions, and where they came from.
+
+    From `names_file` when given, else from the template's ``.regions.csv``
+    sidecar (:func:`region_names_sidecar`), else none (regions are then called
+    ``region_<label>``).  Names for labels the template lacks are an error when
+    none matches (probably the wrong file); unnamed labels are warned about.
+    """
+    import warnings
+
+    if template_file is None:
+        if names_file is not None:
+            raise InputError("--region-names needs --regions (the labelled template they name)")
+        return {}, "none"
+    side = region_names_sidecar(template_file)
+    if names_file is None and not side.is_file():
+        return {}, "none"
+    source = Path(names_file) if names_file is not None else side
+    names = read_region_names(source)
+    present = {int(v) for v in np.unique(labels)}
+    if not present & set(names):
+        raise InputError(f"{source.name} names labels {', '.join(map(str, sorted(names)))} but the "
+                         f"template's regions are {', '.join(map(str, sorted(present)))}")
+    unnamed = sorted(present - set(names))
+    if unnamed:
+        warnings.warn(f"{source.name} gives no name for region label(s) "
+                      f"{', '.join(map(str, unnamed))}; they are called region_<label>", stacklevel=2)
+    return {k: v for k, v in names.items() if k in present}, source.name
+
+
+def region_summary(change, names_from: str) -> dict:
+    """The summary's view of the regions: mean normal displacement (mm) per region name."""
+    if change.labels is None:
+        return {}
+    rows = change.regional_table()
+    return {"region_names_from": names_from,
+            "region_mean_normal_displacement_mm": {r["name"]: r["mean_normal_displacement_mm"]
+                                                   for r in rows}}

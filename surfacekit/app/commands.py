@@ -23,6 +23,8 @@ from .cli_util import (
     is_volume,
     landmark_pairs,
     load_surface,
+    region_names_for,
+    region_summary,
     surface_facts,
     without_timings,
 )
@@ -245,6 +247,9 @@ def _change_args(p):
     p.add_argument("--regions", help="labelled template mesh whose per-vertex 'region' field "
                                      "is transferred to the baseline for a regional table")
     p.add_argument("--region-field", default="region", help="name of the template's label field")
+    p.add_argument("--region-names", metavar="CSV",
+                   help="names of the template's regions: CSV with columns label,name (default: "
+                        "the template's '<template file>.regions.csv' beside it, if present)")
     p.add_argument("--pose", choices=("auto", "same", "any"), default="auto", help="as for 'match'")
     p.add_argument("--landmarks", metavar="PAIRS", help="known pairs (vertex indices or points in mm), as for 'match'")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report and figures")
@@ -308,6 +313,7 @@ def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
                                         input_record(Path(a.followup), follow)],
                              "options": {"pose": a.pose, "seed": a.seed,
                                          "map": a.map or "", "regions": a.regions or "",
+                                         "region names": a.region_names or "",
                                          "units": a.units},
                              "timings (s)": {k: round(v, 2) for k, v in timings.items()}})
 
@@ -328,12 +334,13 @@ def _change(ctx: Context) -> dict:
     template, template_labels = (load_regions(a.regions, a.region_field, units[2]) if a.regions
                                  else (None, None))
     options, landmark_info = _match_options(a.pose, a.landmarks, base, follow)
+    names, names_from = region_names_for(a.region_names, a.regions, template_labels)
     timings: dict[str, float] = {}
     with ctx.progress(3, "change") as bar:
         # one match per pair of surfaces, all with the user's pose, landmarks and seed
         result = compare(base, follow, options=options, seed=a.seed,
                          correspondence=corr, template=template, template_labels=template_labels,
-                         timings=timings)
+                         region_names=names, timings=timings)
         bar.update()
         _write_change(out, base, result)
         bar.update()
@@ -343,7 +350,8 @@ def _change(ctx: Context) -> dict:
     say_warnings(ctx, result.warnings)
     return {"baseline": Path(a.baseline).name, "followup": Path(a.followup).name,
             "output": str(a.output), "units": dict(zip(meshes, units)), **result.change.summary(),
-            **_map_summary(result.correspondence), **landmark_info}
+            **_map_summary(result.correspondence), **landmark_info,
+            **region_summary(result.change, names_from)}
 
 
 COMMANDS = [
