@@ -44,7 +44,7 @@ _PUBLIC = {
         "generalized_procrustes", "ShapeModel", "shape_model", "vertexwise_group_test",
         "GroupTestResult", "spectral_distances",
     ),
-    "cohort": ("run_cohort",),
+    "cohort": ("run_cohort", "CohortFailedError", "UnguardedScriptError"),
     "app.report": ("write_report",),
 }
 # public name -> module that defines it
@@ -63,6 +63,7 @@ _SUBMODULES = {
 __all__ = [
     "AmbiguousMatchWarning",
     "ChangeReport",
+    "CohortFailedError",
     "Comparison",
     "Correspondence",
     "EigenSolverWarning",
@@ -75,6 +76,7 @@ __all__ = [
     "ShapeModel",
     "Surface",
     "SurfaceError",
+    "UnguardedScriptError",
     "__version__",
     "compare",
     "cotangent_laplacian",

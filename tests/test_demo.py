@@ -139,3 +139,5 @@ def test_shipped_sample_files_match_the_generator(tmp_path):
     vol_b = np.asarray(nib.load(fresh["followup_seg"]).dataobj)
     assert (vol_a != vol_b).sum() <= 10  # a voxel centre exactly on the surface may flip
     assert (shipped / "demo_cohort.csv").read_text() == fresh["manifest"].read_text()
+    assert (shipped / "kidney_template.ply.regions.csv").read_text() == \
+        fresh["template_names"].read_text()

@@ -202,6 +202,10 @@ def write_scenario(folder, size: str = "full", seed: int = 0) -> dict:
     template, template_sp = synthetic.organ_surface("kidney", sizes.template, seed=7 + seed)
     paths["template"] = folder / "kidney_template.ply"
     _save(template, paths["template"], fields={"region": regions(template_sp)})
+    # region names beside the template, where `change --regions` looks for them
+    paths["template_names"] = folder / "kidney_template.ply.regions.csv"
+    write_csv(paths["template_names"], [{"label": k, "name": v} for k, v in sorted(REGION_NAMES.items())],
+              columns=("label", "name"))
     # truth built into the scenario: volume change of the bulge on a fine mesh (same pose-free shape)
     fine_base, fine_sp = synthetic.organ_surface("kidney", 20000, seed=99, jitter=0.0)
     true_dv = (bulge(fine_base, fine_sp, sizes.growth_mm).volume - fine_base.volume) / 1000.0
