@@ -131,6 +131,17 @@ def test_rigid_pose_keeps_the_map_pose_on_a_sphere():
     assert rounds <= 5 and pose.n_iter == rounds and pose.rms < 0.05
 
 
+def test_rigid_pose_without_confidence_weighs_vertices_alike():
+    """All-zero confidence falls back to uniform weights, as the robust Kabsch fit does."""
+    s = sk.synthetic.icosphere(3, radius=20.0)
+    target = sk.Surface(s.vertices * [1.0, 1.1, 0.9] @ ROTATION.T + SHIFT, s.faces)
+    ident = np.arange(s.n_vertices)
+    zero, _ = rigid_pose(s, target, ident, np.zeros(s.n_vertices))
+    ones, _ = rigid_pose(s, target, ident, np.ones(s.n_vertices))
+    np.testing.assert_array_equal(zero.matrix, ones.matrix)
+    assert np.isfinite(zero.rms) and zero.weights.max() == 1.0
+
+
 def _angle(rotation):
     return float(np.degrees(np.arccos(np.clip((np.trace(rotation) - 1) / 2, -1, 1))))
 

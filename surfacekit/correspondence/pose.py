@@ -60,12 +60,12 @@ def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
     edge, and drifts tangentially near a changing region, which tilts that pose;
     so it is refined by robust point-to-plane ICP (Chen & Medioni, Image Vision
     Comput. 1992): each round finds, for every source vertex, the closest point
-    on the target faces near its matched vertex (`rings` rings; the map bounds
-    the search; later rounds search `follow_rings` rings around the target vertex
-    nearest the last closest point), and :func:`plane_step` solves the small-angle linearised
-    point-to-plane least squares (Low, UNC Tech. Rep. TR04-004, 2004) with
-    Tukey weights on the offsets along the source normals (Beaton & Tukey,
-    Technometrics 1974) times `weights`.  Directions the planes barely constrain
+    on the target faces near its matched vertex (`rings` rings: the map bounds
+    the search; later rounds search `follow_rings` rings around the target
+    vertex nearest the last closest point), and :func:`plane_step` solves the
+    small-angle linearised point-to-plane least squares (Low, UNC Tech. Rep.
+    TR04-004, 2004) with Tukey weights on the offsets along the source normals
+    (Beaton & Tukey, Technometrics 1974) times `weights`.  Directions the planes barely constrain
     (the turns of a near-sphere) keep the map's pose: the pose never slides
     along a symmetry.  Rounds stop when a step moves no source vertex by more
     than `tol_mm` and turns by less than `tol_rad`, when the pose is back within
@@ -75,11 +75,15 @@ def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
     The fit runs target -> source, in the source's frame, as change analysis
     measures it; the inverse is returned, so ``pose.inverse()`` brings the target
     into the source frame.  weights (n_source,) in [0, 1], e.g. the map's source
-    confidence.  Returns ``(pose, rounds used)``; the pose's ``weights`` are the
+    confidence (all zero: uniform, as in :func:`~.alignment.rigid_transform`).
+    Returns ``(pose, rounds used)``; the pose's ``weights`` are the
     final robust weights per source vertex (max 1), ``rms`` the weighted RMS
     point-to-plane offset (mm) and ``n_iter`` the rounds used.
     """
     x = source.vertices
+    weights = np.asarray(weights, dtype=np.float64)
+    if not weights.sum() > 0:
+        weights = np.ones(len(x))
     to_source = rigid_transform(target.vertices[source_to_target], x, weights=weights)
     pairs = near_faces(target, source_to_target, rings)
     normals = outward_vertex_normals(source)

@@ -91,9 +91,9 @@ RIVAL_WITHIN = 1.05
 
 # ---------------------------------------------------------------- the rigid pose for change analysis
 #: at most this many closest-point rounds of the point-to-plane ICP that refines the rigid
-#: pose of the final map (correspondence.pose.rigid_pose).  Measured on held-out growth pairs
-#: (benchmarks/bench_pose.py): 3-8 rounds reach POSE_TOLERANCE_MM; the cap only bounds a
-#: surface that never settles.
+#: pose of the final map (correspondence.pose.rigid_pose).  Measured on the growth pairs of
+#: benchmarks/bench_pose.py: 4-18 rounds reach POSE_TOLERANCE_MM; the cap only bounds a
+#: noisy surface whose closest points keep switching (2 of 8 "mixed" pairs reach it).
 POSE_ROUNDS = 20
 #: a round whose step moves no source vertex by more than this (mm) and turns by less than
 #: POSE_TOLERANCE_RAD ends the refinement: far below the resolution of clinical scans
@@ -110,7 +110,7 @@ POSE_SEARCH_RINGS = 1
 #: rings was up to 0.1 mm worse and slower to settle on the benchmark pairs.
 POSE_FOLLOW_RINGS = 1
 #: Tukey reweightings per round at most (the offsets are linear in the step, so they are
-#: cheap); measured 20-60 to settle to 1e-5 mm on the benchmark pairs.
+#: cheap); measured 2-44 to settle to POSE_TOLERANCE_MM / 10 on the benchmark pairs.
 POSE_REWEIGHTINGS = 200
 #: point-to-plane curvature, relative to the strongest direction, below which a direction
 #: of the pose is left to the map (a sphere's turns: 0); measured at least 0.009 on the
