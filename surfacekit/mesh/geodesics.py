@@ -273,9 +273,24 @@ def geodesic_polar_coordinates(s: Surface, center: int, radius: float, *, t_coef
     vertex_indices : (p,) int64, ascending, the vertices with ``r <= radius`` (center included)
     r : (p,) geodesic distance from the center (mm)
     theta : (p,) angle in radians, in (-π, π]; 0 at the center
+
+    Raises
+    ------
+    ValueError
+        When `radius` is below the shortest edge at `center`: the patch would hold
+        the centre alone.
     """
     if not np.isfinite(radius) or radius <= 0:
         raise ValueError(f"radius must be a positive number, got {radius}")
+    if not 0 <= int(center) < s.n_vertices:
+        raise ValueError(f"center {center} is not a vertex index (0..{s.n_vertices - 1})")
+    edges = s.edges[(s.edges == int(center)).any(axis=1)]
+    if len(edges) == 0:
+        raise ValueError(f"center vertex {center} is used by no face")
+    local = float(np.linalg.norm(s.vertices[edges[:, 0]] - s.vertices[edges[:, 1]], axis=1).min())
+    if radius < local:
+        raise ValueError(f"radius {radius:g} mm is below the local edge length at vertex {center} "
+                         f"({local:g} mm, its shortest edge): the patch would hold the centre alone")
     log = GeodesicSolver.for_surface(s, t_coef=t_coef).log_map(center)
     r = np.hypot(log[:, 0], log[:, 1])
     idx = np.flatnonzero(r <= radius)

@@ -89,6 +89,14 @@ def laplacian_method(s: Surface, method: str = "auto") -> str:
     return "cotangent"
 
 
+def check_no_unused_vertices(s: Surface) -> None:
+    """Raise a SurfaceError naming the count when some vertices are used by no face."""
+    unused = s.n_unreferenced_vertices
+    if unused:
+        what = "1 vertex is" if unused == 1 else f"{unused} vertices are"
+        raise SurfaceError(f"{what} used by no face; sk.prepare (or `surfacekit prepare`) drops them")
+
+
 def laplacian(s: Surface, method: str = "auto", mass: str = "barycentric"):
     """Stiffness and mass matrices ``(L, M)`` of a surface, cached on it.
 
@@ -104,6 +112,12 @@ def laplacian(s: Surface, method: str = "auto", mass: str = "barycentric"):
     mass : {"barycentric", "voronoi"}
         Lumped mass for the cotangent method.
 
+    Raises
+    ------
+    SurfaceError
+        When some vertices are used by no face: they would have zero mass and make
+        every operator built on (L, M) singular (the eigenbasis, the descriptors).
+
     Returns
     -------
     L : scipy.sparse.csr_matrix, (n, n), symmetric positive semi-definite (1 = dimensionless)
@@ -117,6 +131,7 @@ def laplacian(s: Surface, method: str = "auto", mass: str = "barycentric"):
     >>> abs(L @ np.ones(s.n_vertices)).max() < 1e-12
     True
     """
+    check_no_unused_vertices(s)
     method = laplacian_method(s, method)
     # the robust Laplacian brings its own (intrinsic) mass, so `mass` does not change it
     key = ("laplacian", method, mass if method == "cotangent" else "intrinsic")

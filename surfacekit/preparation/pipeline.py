@@ -241,7 +241,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     Parameters
     ----------
     surface : Surface (or anything with ``vertices`` and ``faces``, e.g. a trimesh)
-    target_vertices : vertex count of the output (about ±15%); None keeps the resolution
+    target_vertices : vertex count of the output (within 3%); None keeps the resolution
     smooth : True/False forces smoothing on/off; None (default) smooths surfaces whose
         metadata says they come from a segmentation (staircase artefacts)
     smoothing_iterations : number of λ|μ pairs

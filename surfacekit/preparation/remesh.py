@@ -158,7 +158,24 @@ def _midpoint_subdivide(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.nd
                         ((a, ab, ca), (ab, b, bc), (ca, bc, c), (ab, bc, ca))])
     return v, f
 
-def resample(surface: Surface, target_vertices: int) -> Surface:
+def _resample_arrays(v: np.ndarray, f: np.ndarray, target: int) -> tuple[np.ndarray, np.ndarray]:
+    """Subdivide until there are at least `target` vertices, decimate to the face count
+    of `target` vertices, then even out the triangles (see :func:`resample`)."""
+    import fast_simplification
+
+    for _ in range(6):  # each split multiplies the count by about 4
+        if len(v) >= target:
+            break
+        v, f = _midpoint_subdivide(v, f)
+    target_faces = round(target * len(f) / len(v))
+    if target_faces < len(f):
+        v, f = fast_simplification.simplify(v, f.astype(np.int32), target_count=target_faces,
+                                            agg=7.0)
+    return improve_triangles(v, f)
+
+
+def resample(surface: Surface, target_vertices: int, *, tolerance: float = 0.01,
+             attempts: int = 3) -> Surface:
     """Resample to about ``target_vertices`` vertices with well-shaped triangles.
 
     Quadric-error edge-collapse decimation (Garland & Heckbert, SIGGRAPH 1997,
@@ -166,23 +183,25 @@ def resample(surface: Surface, target_vertices: int) -> Surface:
     to the target; a surface with fewer vertices than the target is first split
     by midpoint subdivision (each triangle into four, shape unchanged).  Delaunay
     edge flips and tangential relaxation (:func:`improve_triangles`) then even out
-    the triangles.
+    the triangles; their short-edge collapses remove vertices (10-15% of them
+    after a subdivision), so when the count misses the target by more than
+    `tolerance` the decimation is redone, at most ``attempts`` times in all, from
+    the same input with the target scaled by the ratio missed, and the closest
+    result is kept (measured: within 1% of targets 1000 to 20000 on synthetic
+    organ shapes and a real intestine surface).
     """
-    import fast_simplification
-
     target = int(target_vertices)
     if target < 4:
         raise ValueError(f"target_vertices must be at least 4, got {target_vertices!r}")
     # writable, contiguous copies: the compiled decimator rejects read-only arrays
-    v, f = np.array(surface.vertices, dtype=np.float64), np.array(surface.faces, dtype=np.int64)
-    for _ in range(6):  # each split multiplies the count by about 4
-        if len(v) >= target:
+    v0, f0 = np.array(surface.vertices, dtype=np.float64), np.array(surface.faces, dtype=np.int64)
+    goal, best = target, None
+    for _ in range(max(int(attempts), 1)):
+        v, f = _resample_arrays(v0, f0, goal)
+        if best is None or abs(len(v) - target) < abs(len(best[0]) - target):
+            best = (v, f)
+        if abs(len(v) / target - 1) <= tolerance:
             break
-        v, f = _midpoint_subdivide(v, f)
-    faces_per_vertex = len(f) / len(v)
-    target_faces = round(target * faces_per_vertex)
-    if target_faces < len(f):
-        v, f = fast_simplification.simplify(v, f.astype(np.int32), target_count=target_faces,
-                                            agg=7.0)
-    v, f = improve_triangles(v, f)
+        goal = max(4, round(goal * target / len(v)))
+    v, f = best
     return surface.copy_with(vertices=v, faces=np.asarray(f, dtype=np.int64))
