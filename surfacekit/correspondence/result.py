@@ -101,8 +101,8 @@ class Correspondence:
         deformation (low Laplace–Beltrami eigenfunctions) puts it on the target.
     rigid : Transform or None
         The rigid pose (scale 1) of the final map, source -> target in mm, robust
-        to a changing region (confidence-weighted, Tukey-reweighted Kabsch fit
-        refined point-to-surface; see :func:`surfacekit.correspondence.pose.rigid_pose`).
+        to a changing region (confidence-weighted, Tukey-reweighted Kabsch fit refined
+        by robust point-to-plane ICP; see :func:`surfacekit.correspondence.pose.rigid_pose`).
         ``rigid.weights`` are the final robust weights per source vertex, ``rigid.rms``
         the residual (mm).  ``rigid.inverse()`` brings the target into the source frame.
     options : MatchOptions or None
