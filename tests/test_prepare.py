@@ -241,7 +241,7 @@ def test_restore_volume_keeps_centroid():
 def test_resampling_hits_the_target_with_good_triangles(start, target):
     s = _sphere(start)  # 2562 or 162 vertices
     prepared, report = sk.prepare(s, target_vertices=target)
-    assert abs(prepared.n_vertices / target - 1) < 0.15
+    assert abs(prepared.n_vertices / target - 1) < 0.03
     q = report.after
     assert q.is_watertight and q.is_outward and q.warnings == []
     assert q.mean_min_angle_deg > 40 and q.min_angle_deg > 10
