@@ -97,10 +97,17 @@ def html_table(rows: Sequence[dict] | dict, *, columns: Sequence[str] | None = N
     return "".join(out)
 
 
-def figure_png(fig) -> bytes:
-    """PNG bytes of a matplotlib figure (Agg; no timestamp metadata, so bytes are reproducible)."""
+def figure_png(fig, *, close: bool = False) -> bytes:
+    """PNG bytes of a matplotlib figure (Agg; no timestamp metadata, so bytes are reproducible).
+
+    With `close`, the figure is released from pyplot afterwards (pyplot keeps every open figure
+    alive, so a long session of reports would otherwise grow without bound)."""
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=110, bbox_inches="tight", metadata={"Software": None})
+    if close:
+        import matplotlib.pyplot as plt
+
+        plt.close(fig)
     return buf.getvalue()
 
 
@@ -161,8 +168,9 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
     warnings : plain sentences shown in a box at the top (implausible sizes, mixed
         units, a large alignment residual: see :mod:`surfacekit.analysis.plausibility`)
     tables : ``{caption: rows}`` with rows a list of dicts
-    figures : ``{caption: matplotlib Figure or PNG bytes}``; embedded as base64 and,
-        when ``figure_dir`` is given, also written there as ``<slug>.png`` for print
+    figures : ``{caption: matplotlib Figure or PNG bytes}``; embedded as base64 and, when
+        ``figure_dir`` is given, also written there as ``<slug>.png`` for print; figures are
+        closed once drawn
     provenance : ``{"inputs": ..., "options": ..., "timings": ...}``; package
         versions and the creation time are added
 
@@ -206,7 +214,7 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
         if figure_dir is not None:
             Path(figure_dir).mkdir(parents=True, exist_ok=True)
         for caption, fig in figures.items():
-            png = fig if isinstance(fig, (bytes, bytearray)) else figure_png(fig)
+            png = fig if isinstance(fig, (bytes, bytearray)) else figure_png(fig, close=True)
             if figure_dir is not None:
                 target = Path(figure_dir) / f"{slug(caption)}.png"
                 with atomic_path(target) as tmp:
