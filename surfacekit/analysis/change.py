@@ -16,6 +16,7 @@ from ..mesh.laplacian import face_to_vertex_mean
 from ..mesh.proximity import near_faces, outward_vertex_normals, project_pairs
 from ..mesh.surface import Surface, SurfaceError
 from . import geometry as geo
+from .components import boundary_band, open_note
 from .metrics import REGION_COLUMNS, change_metrics, regional_rows
 from .plausibility import change_value_warnings, pair_warnings
 
@@ -35,7 +36,8 @@ class ChangeReport:
     confidence : (n,) in [0, 1], the correspondence confidence of each baseline vertex
     rigid : (4, 4) the removed rigid motion, mapping follow-up coordinates into the
         baseline frame (mm)
-    baseline_volume_mm3, followup_volume_mm3, baseline_area_mm2, followup_area_mm2
+    baseline_volume_mm3, followup_volume_mm3, baseline_area_mm2, followup_area_mm2 :
+        of the whole surfaces (a volume is NaN when its surface is open)
     labels : (n,) int region labels on the baseline, or None
     region_names : {label: name}
     info : dict of diagnostics (JSON-able)
@@ -63,15 +65,28 @@ class ChangeReport:
 
     @property
     def volume_change_percent(self) -> float:
+        """Relative volume change (%); NaN unless both surfaces are closed."""
         return 100.0 * (self.followup_volume_mm3 / self.baseline_volume_mm3 - 1.0)
+
+    def _compared_areas(self) -> tuple[float, float]:
+        """Baseline and follow-up area compared: the whole surfaces, or for open surfaces the
+        region both cover (``info["covered_baseline_area_mm2"]``, ...)."""
+        if "covered_baseline_area_mm2" in self.info:
+            return (float(self.info["covered_baseline_area_mm2"]),
+                    float(self.info["covered_followup_area_mm2"]))
+        return self.baseline_area_mm2, self.followup_area_mm2
 
     @property
     def area_change_mm2(self) -> float:
-        return self.followup_area_mm2 - self.baseline_area_mm2
+        """Follow-up minus baseline area; for open surfaces over the region both cover."""
+        base, follow = self._compared_areas()
+        return follow - base
 
     @property
     def area_change_percent(self) -> float:
-        return 100.0 * (self.followup_area_mm2 / self.baseline_area_mm2 - 1.0)
+        """Relative area change (%); for open surfaces over the region both cover."""
+        base, follow = self._compared_areas()
+        return 100.0 * (follow / base - 1.0)
 
     def metrics(self, mask: np.ndarray | None = None) -> dict:
         """Area-weighted change metrics over all vertices or a region (:func:`change_metrics`)."""
@@ -94,6 +109,7 @@ class ChangeReport:
             "followup_area_mm2": self.followup_area_mm2,
             "area_change_mm2": self.area_change_mm2,
             "area_change_percent": self.area_change_percent,
+            **{k: self.info[k] for k in ("covered_area_fraction", "volume_note") if k in self.info},
             **field_stats,
             "alignment_rms_mm": float(self.info.get("alignment_rms_mm", float("nan"))),
             "warnings": list(self.info.get("warnings", [])),
@@ -210,17 +226,57 @@ def _check_correspondence(baseline: Surface, followup: Surface, corr) -> np.ndar
     return s2t
 
 
-def _log_area_ratio(baseline: Surface, mapped: np.ndarray, sigma: float) -> tuple[np.ndarray, int]:
-    """Smoothed per-vertex log area ratio of the map, and the number of folded faces."""
+def _mapped_face_areas(baseline: Surface, mapped: np.ndarray) -> np.ndarray:
+    """(m,) signed area of each baseline face's image (negative where the map folds it)."""
     f = baseline.faces
     cross = np.cross(mapped[f[:, 1]] - mapped[f[:, 0]], mapped[f[:, 2]] - mapped[f[:, 0]])
-    mapped_area = 0.5 * np.einsum("ij,ij->i", cross, baseline.face_normals)  # signed: flips < 0
+    return 0.5 * np.einsum("ij,ij->i", cross, baseline.face_normals)
+
+
+def _log_area_ratio(baseline: Surface, mapped: np.ndarray, sigma: float) -> tuple[np.ndarray, int]:
+    """Smoothed per-vertex log area ratio of the map, and the number of folded faces."""
+    mapped_area = _mapped_face_areas(baseline, mapped)  # signed: flips < 0
     area = baseline.face_areas
     floor = 1e-3 * area  # folded or collapsed mapped faces count as a 1000-fold shrink
     ratio = np.divide(np.maximum(mapped_area, floor), area, out=np.ones_like(area),
                       where=area > 0)
     n_flipped = int(np.sum((mapped_area <= floor) & (area > 0)))
     return geo.heat_smooth(baseline, face_to_vertex_mean(baseline, np.log(ratio)), sigma), n_flipped
+
+
+def _leave_out_cuts(baseline: Surface, followup: Surface, corr: Correspondence,
+                    fields: tuple) -> tuple[dict, list[str]]:
+    """Open surfaces: NaN in `fields` near a boundary only one side has; covered areas; warnings.
+
+    A baseline vertex is left out when it lies within one edge ring of a baseline
+    boundary while its matched follow-up vertex is not within one ring of a
+    follow-up boundary, or the other way round: there one scan has surface the
+    other lacks, so no change can be measured.  Where both sides have the boundary
+    (the same cut in both scans) the values are kept.  The area change compares the
+    region both surfaces cover: the kept baseline vertices, and the follow-up
+    vertices that are kept by the same rule read backwards (through the map
+    follow-up -> baseline) and whose baseline partner is kept (vertex areas summed;
+    counting follow-up vertices rather than the images of baseline triangles keeps
+    the estimate from shrinking where the map is not onto).
+    """
+    s2t, t2s = corr.source_to_target, corr.target_to_source
+    band_b, band_f = boundary_band(baseline), boundary_band(followup)
+    one_sided = band_b ^ band_f[s2t]
+    for a in fields:
+        a[one_sided] = np.nan
+    covered_f = ~(band_f ^ band_b[t2s]) & ~one_sided[t2s]
+    area_b = float(baseline.vertex_areas[~one_sided].sum())
+    area_f = float(followup.vertex_areas[covered_f].sum())
+    notes = [n for n in (open_note(baseline, "baseline"), open_note(followup, "follow-up")) if n]
+    share = area_b / float(baseline.area)
+    info = {"covered_baseline_area_mm2": area_b, "covered_followup_area_mm2": area_f,
+            "covered_area_fraction": share, "left_out_vertices": int(one_sided.sum()),
+            "volume_note": "volume not reported: " + "; ".join(notes)}
+    warnings = [f"{n}; its volume and the volume change are not reported (NaN), the area change "
+                f"is measured over the region both surfaces cover ({share:.1%} of the baseline "
+                "area), and change values within one edge ring of a boundary that only one scan "
+                f"has are left out ({int(one_sided.sum())} baseline vertices, NaN)" for n in notes]
+    return info, warnings
 
 
 def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *,
@@ -248,7 +304,15 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
     4. ``log_area_ratio``: per baseline face, log(area of the mapped triangle /
        face area) (the Jacobian of the piecewise-linear map), area-averaged to
        vertices and smoothed over the same length as in step 2.
-    5. ``info["warnings"]`` (also in :meth:`ChangeReport.summary`): plain sentences
+    5. Open surfaces (either side has a boundary): within one edge ring of a
+       boundary that only one scan has, the per-vertex fields are NaN (no change
+       can be measured where one scan has surface the other lacks; a cut present
+       in both scans keeps its values), the metrics and regional rows skip those
+       vertices, the volumes and the volume change are NaN with the reason in
+       ``info["volume_note"]``, and the area change is measured over the region
+       both surfaces cover (``info["covered_area_fraction"]`` of the baseline
+       area); a warning names each open side.  Closed pairs are not affected.
+    6. ``info["warnings"]`` (also in :meth:`ChangeReport.summary`): plain sentences
        when a surface's size is implausible for an organ, the two differ in scale
        by more than 3x, the alignment residual is large for the organ's size, or a
        volume or area change is so large that a units problem is the likely cause
@@ -282,13 +346,17 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
     normals = outward_vertex_normals(baseline)  # 3.
     normal_displacement = np.einsum("ij,ij->i", displacement, normals)
     log_area_ratio, n_flipped = _log_area_ratio(baseline, mapped, sigma)  # 4.
+    open_info, open_warnings = {}, []
+    if not (baseline.is_closed and followup.is_closed):  # 5. open surfaces
+        open_info, open_warnings = _leave_out_cuts(
+            baseline, followup, corr, (displacement, normal_displacement, log_area_ratio))
 
     weights = getattr(corr.rigid, "weights", None)
     info = {"alignment_rms_mm": float(corr.rigid.rms), "smoothing_mm": sigma,
             "projection_rings": rings, "flipped_faces": n_flipped,
             "robust_inlier_fraction": (float(np.mean(np.asarray(weights) > 0))
                                        if weights is not None else None),
-            "correspondence_route": str(corr.info.get("route", "given"))}
+            "correspondence_route": str(corr.info.get("route", "given")), **open_info}
     report = ChangeReport(
         displacement=displacement, normal_displacement=normal_displacement,
         log_area_ratio=log_area_ratio, confidence=conf,
@@ -297,7 +365,7 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
         baseline_area_mm2=float(baseline.area), followup_area_mm2=float(followup.area),
         labels=lab, region_names=dict(names or {}), info=info)
     # plain-sentence warnings: implausible sizes, mixed units, a large residual (plausibility)
-    info["warnings"] = (pair_warnings(baseline, followup, corr.rigid.rms)
+    info["warnings"] = open_warnings + (pair_warnings(baseline, followup, corr.rigid.rms)
                         + change_value_warnings(report.volume_change_percent,
                                                 report.area_change_percent))
     return report

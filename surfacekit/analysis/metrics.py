@@ -37,7 +37,10 @@ def change_metrics(report, mask: np.ndarray | None = None) -> dict:
     ----------
     report : ChangeReport (its ``normal_displacement``, ``log_area_ratio``,
         ``vertex_areas`` and ``confidence`` arrays are used)
-    mask : (n,) bool selecting the region's baseline vertices; None = all
+    mask : (n,) bool selecting the region's baseline vertices; None = all.  Vertices
+        whose change is NaN (left out along the boundary of an open surface) are not
+        counted, in neither the vertex count nor the area nor any statistic; a region
+        left with none gives zero vertices, zero area and NaN statistics.
 
     Returns
     -------
@@ -55,6 +58,12 @@ def change_metrics(report, mask: np.ndarray | None = None) -> dict:
         nd, lar, w, conf = nd[mask], lar[mask], w[mask], conf[mask]
     if not len(nd):
         raise ValueError("change_metrics: the region has no vertices")
+    measured = np.isfinite(nd) & np.isfinite(lar)
+    if not measured.all():  # open surfaces: vertices left out near a cut (NaN) do not count
+        nd, lar, w, conf = nd[measured], lar[measured], w[measured], conf[measured]
+    if not len(nd):
+        return {k: (0 if k == "n_vertices" else 0.0 if k == "area_mm2" else float("nan"))
+                for k in METRIC_NAMES}
     wn = w / w.sum()
     absolute = np.abs(nd)
     return {

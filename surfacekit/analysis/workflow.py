@@ -16,6 +16,7 @@ from ..correspondence.options import MatchOptions
 from ..correspondence.result import Correspondence
 from ..mesh.surface import Surface, SurfaceError
 from .change import ChangeReport, measure_change
+from .components import main_component
 from .labels import transfer_labels
 from .plausibility import scale_warnings
 
@@ -33,6 +34,9 @@ class Comparison:
     template_correspondence : Correspondence template -> baseline when a template
         was matched; None without a template, or when the template shares the
         baseline's triangulation (its labels are then used as they are)
+    surfaces : (baseline, follow-up) as compared: the inputs, or their largest
+        connected pieces when small pieces were dropped (the change fields and the
+        labels belong to this baseline's vertices)
     """
 
     correspondence: Correspondence
@@ -40,6 +44,7 @@ class Comparison:
     labels: np.ndarray | None = None
     label_confidence: np.ndarray | None = None
     template_correspondence: Correspondence | None = None
+    surfaces: tuple | None = None
 
     @property
     def warnings(self) -> list[str]:
@@ -52,6 +57,25 @@ def same_triangulation(a: Surface, b: Surface) -> bool:
     """True when two surfaces have the same triangles (vertex i of one is vertex i of the other)."""
     return (a.n_vertices == b.n_vertices and a.faces.shape == b.faces.shape
             and bool(np.array_equal(a.faces, b.faces)))
+
+
+def main_pieces(baseline: Surface, followup: Surface, options: MatchOptions,
+                names=("baseline", "follow-up")) -> tuple[Surface, Surface, MatchOptions, list[str]]:
+    """The largest connected piece of each input when the other pieces are small (< 5% of the
+    area, :func:`main_component`), the landmark pairs renumbered to the kept vertices, and
+    a warning per input naming what was dropped.  Raises SurfaceError for two large pieces
+    or a landmark on a dropped piece."""
+    base, kept_b, warn_b = main_component(baseline, names[0])
+    follow, kept_f, warn_f = main_component(followup, names[1])
+    if (warn_b or warn_f) and options.landmarks:
+        new = []
+        for a, b in options.landmarks:
+            ia, ib = np.searchsorted(kept_b, a), np.searchsorted(kept_f, b)
+            if ia >= len(kept_b) or kept_b[ia] != a or ib >= len(kept_f) or kept_f[ib] != b:
+                raise SurfaceError(f"landmark pair ({a}, {b}) lies on a dropped small piece")
+            new.append((int(ia), int(ib)))
+        options = dataclasses.replace(options, landmarks=tuple(new))
+    return base, follow, options, warn_b + warn_f
 
 
 def _tick(timings: dict | None, name: str, start: float) -> float:
@@ -92,6 +116,10 @@ def compare(baseline: Surface, followup: Surface, *, options: MatchOptions | Non
     `options` index the baseline and follow-up vertices, so they are left out of
     the template match.  The change is then measured from the correspondence
     (:func:`measure_change`) and the labels carried by :func:`transfer_labels`.
+    An input made of several connected pieces is reduced to its largest piece when
+    the others hold less than 5% of its area (a warning names what was dropped, and
+    ``Comparison.surfaces`` holds the pieces compared); with two large pieces it is
+    refused (keep one first, e.g. with ``sk.prepare``).
 
     Parameters
     ----------
@@ -109,6 +137,9 @@ def compare(baseline: Surface, followup: Surface, *, options: MatchOptions | Non
     Comparison
     """
     options = MatchOptions() if options is None else options
+    if not isinstance(baseline, Surface) or not isinstance(followup, Surface):
+        raise SurfaceError("baseline and followup must be Surface objects")
+    baseline, followup, options, piece_warnings = main_pieces(baseline, followup, options)
     start = time.perf_counter()
     corr = correspondence
     if corr is None:
@@ -125,5 +156,6 @@ def compare(baseline: Surface, followup: Surface, *, options: MatchOptions | Non
     change = measure_change(baseline, followup, corr, labels=labels, names=region_names)
     if template is not None:  # a template in other units than the baseline
         change.info["warnings"] += scale_warnings(baseline, template, ("baseline", "region template"))
+    change.info["warnings"][:0] = piece_warnings
     _tick(timings, "change", start)
-    return Comparison(corr, change, labels, confidence, template_corr)
+    return Comparison(corr, change, labels, confidence, template_corr, (baseline, followup))

@@ -199,6 +199,7 @@ def _map_summary(corr) -> dict:
 
 def _match(ctx: Context) -> dict:
     from ..analysis.plausibility import pair_warnings
+    from ..analysis.workflow import main_pieces
     from ..correspondence import solver
 
     a = ctx.args
@@ -209,12 +210,13 @@ def _match(ctx: Context) -> dict:
     tgt = load_surface(a.target, "target", units=units[1])
     t0 = time.perf_counter()
     options, landmark_info = _match_options(a.pose, a.landmarks, src, tgt)
+    names = (Path(a.source).name, Path(a.target).name)
+    src, tgt, options, pieces = main_pieces(src, tgt, options, names)  # small extra pieces dropped
     corr = solver.match(src, tgt, options, seed=a.seed)
     seconds = time.perf_counter() - t0
     without_timings(corr)
     corr.save(target_path)
-    names = (Path(a.source).name, Path(a.target).name)
-    warnings = pair_warnings(src, tgt, corr.rigid.rms, names)
+    warnings = pieces + pair_warnings(src, tgt, corr.rigid.rms, names)
     say_warnings(ctx, warnings)
     summary = {"source": names[0], "target": names[1], "output": str(a.output),
                "units": {"source": units[0], "target": units[1]}, **_map_summary(corr), **landmark_info,
@@ -319,7 +321,7 @@ def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
 
 
 def _change(ctx: Context) -> dict:
-    from ..analysis.workflow import compare
+    from ..analysis.workflow import compare, main_pieces
 
     a = ctx.args
     meshes = ("baseline", "follow-up", "region template")[:3 if a.regions else 2]
@@ -330,10 +332,12 @@ def _change(ctx: Context) -> dict:
     follow = load_surface(a.followup, "follow-up", units=units[1])
     if a.map and a.landmarks:
         raise InputError("--landmarks has no effect with --map (the map is already made); give one of them")
-    corr = _load_map(a.map, base, follow) if a.map else None
     template, template_labels = (load_regions(a.regions, a.region_field, units[2]) if a.regions
                                  else (None, None))
     options, landmark_info = _match_options(a.pose, a.landmarks, base, follow)
+    base, follow, options, pieces = main_pieces(base, follow, options,
+                                                (Path(a.baseline).name, Path(a.followup).name))
+    corr = _load_map(a.map, base, follow) if a.map else None
     names, names_from = region_names_for(a.region_names, a.regions, template_labels)
     timings: dict[str, float] = {}
     with ctx.progress(3, "change") as bar:
@@ -341,6 +345,7 @@ def _change(ctx: Context) -> dict:
         result = compare(base, follow, options=options, seed=a.seed,
                          correspondence=corr, template=template, template_labels=template_labels,
                          region_names=names, timings=timings)
+        result.change.info["warnings"][:0] = pieces
         bar.update()
         _write_change(out, base, result)
         bar.update()

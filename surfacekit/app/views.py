@@ -128,13 +128,14 @@ def change_figures(baseline: Surface, change, regional: list[dict] | None = None
                    corr=None) -> dict:
     """PNG figures (matplotlib) of a change result, keyed by caption."""
     nd = np.asarray(change.normal_displacement, dtype=float)
+    measured = np.isfinite(nd)
     out = {
         "Normal displacement on the baseline (mm)":
             figs.surface_figure(baseline, nd, title="normal displacement", kind="diverging",
                                 unit="mm"),
-        "Distribution of normal displacement (area-weighted)":
-            figs.histogram_figure(nd, title="normal displacement", unit="mm",
-                                  weights=baseline.vertex_areas, centre_zero=True),
+        "Distribution of normal displacement (area-weighted)":  # NaN: left out near a cut
+            figs.histogram_figure(nd[measured], title="normal displacement", unit="mm",
+                                  weights=baseline.vertex_areas[measured], centre_zero=True),
     }
     if regional:
         key = next((k for k in regional[0] if "normal" in k and "mean" in k), None)
