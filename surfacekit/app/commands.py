@@ -175,22 +175,15 @@ def _match_options(pose: str, landmarks: str | None, source, target):
                         landmarks=pairs), info
 
 
-def _map_summary(corr) -> dict:
+def _map_summary(corr, source=None, target=None) -> dict:
+    from .views import map_trust
+
     out = {}
     if getattr(corr, "confidence", None) is not None:
         out["mean_confidence"] = float(np.mean(corr.confidence))
     info = getattr(corr, "info", {}) or {}
     out.update({k: v for k, v in info.items() if k in ("route", "energy", "chosen")})
-    amb = info.get("rotation_ambiguity")
-    if amb:  # the shapes leave a turn of the map open (see sk.AmbiguousMatchWarning)
-        out["rotation_ambiguous"] = bool(amb["ambiguous"])
-        if amb["ambiguous"]:
-            axis = ("longest", "middle", "shortest")[amb["axis"]]
-            if amb["flip"]:
-                what = f"a map turned by {amb['rival']['angle_deg']:.0f} degrees fits almost as well"
-            else:
-                what = f"the shapes barely fix a turn about the target's {axis} axis"
-            out["rotation_note"] = f"{what}; the map may be turned: give 2-3 landmark pairs (--landmarks)"
+    out.update(map_trust(corr, source, target))  # turn note, coverage, round trip, distortion
     n_lm = len((info.get("options") or {}).get("landmarks") or ())
     if n_lm:
         out["landmark_pairs"] = n_lm
@@ -219,18 +212,21 @@ def _match(ctx: Context) -> dict:
     warnings = pieces + pair_warnings(src, tgt, corr.rigid.rms, names)
     say_warnings(ctx, warnings)
     summary = {"source": names[0], "target": names[1], "output": str(a.output),
-               "units": {"source": units[0], "target": units[1]}, **_map_summary(corr), **landmark_info,
+               "units": {"source": units[0], "target": units[1]}, **_map_summary(corr, src, tgt),
+               **landmark_info,
                "alignment_rms_mm": float(corr.rigid.rms), "warnings": warnings,
                "seconds": round(seconds, 2)}
     if report_path is not None:
         from .report import write_report
-        from .views import correspondence_panel
+        from .views import correspondence_panel, trust_report_parts
 
+        trust_summary, trust_table = trust_report_parts(summary)
         write_report(report_path, title="surfacekit correspondence report",
                      subtitle=f"{names[0]} → {names[1]}",
                      panels=[correspondence_panel(names[0], src, names[1], tgt, corr)],
-                     summary={k: v for k, v in summary.items() if k not in ("seconds", "warnings")},
-                     warnings=warnings,
+                     summary={k: v for k, v in trust_summary.items()
+                              if k not in ("seconds", "warnings")},
+                     warnings=warnings, tables=trust_table,
                      provenance={"inputs": [input_record(Path(a.source), src),
                                             input_record(Path(a.target), tgt)],
                                  "options": {"pose": a.pose, "seed": a.seed,
@@ -299,17 +295,20 @@ def _write_change(out: Path, base, result) -> None:
 
 def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
     from .report import write_report
-    from .views import change_figures, change_panel
+    from .views import change_figures, change_panel, map_trust, trust_report_parts
 
     (base, follow), rep, corr = surfaces, result.change, result.correspondence
     names = (Path(a.baseline).name, Path(a.followup).name)
     regional = rep.regional_table() if result.labels is not None else None
     summary = rep.summary()
     warnings = summary.pop("warnings")
+    trust_summary, tables = trust_report_parts(map_trust(corr, base, follow))
+    summary.update(trust_summary)  # the turn note and a verdict per map-quality measure
+    tables = {**({"Regions": regional} if regional else {}), **tables}
     write_report(out / "report.html", title="surfacekit change report",
                  subtitle=f"{names[0]} → {names[1]}",
                  panels=[change_panel(names[0], base, names[1], follow, corr, rep, result.labels)],
-                 summary=summary, warnings=warnings, tables={"Regions": regional} if regional else None,
+                 summary=summary, warnings=warnings, tables=tables,
                  figures=change_figures(base, rep, regional, corr), figure_dir=out / "figures",
                  provenance={"inputs": [input_record(Path(a.baseline), base),
                                         input_record(Path(a.followup), follow)],
@@ -355,7 +354,7 @@ def _change(ctx: Context) -> dict:
     say_warnings(ctx, result.warnings)
     return {"baseline": Path(a.baseline).name, "followup": Path(a.followup).name,
             "output": str(a.output), "units": dict(zip(meshes, units)), **result.change.summary(),
-            **_map_summary(result.correspondence), **landmark_info,
+            **_map_summary(result.correspondence, base, follow), **landmark_info,
             **region_summary(result.change, names_from)}
 
 

@@ -180,3 +180,49 @@ def group_test_panel(template_name: str, template: Surface, result, mean_differe
         layers.append(ReportLayer("regions", [np.asarray(labels)], kind="labels",
                                   label_names=label_names, description="Template regions."))
     return ReportPanel(f"Group statistics on {template_name}", [(template_name, template)], layers)
+
+
+TRUST_TABLE = "How far to trust the map"
+TRUST_KEYS = ("map_quality", "map_notes", "map_notes_text")
+
+
+def map_trust(corr, source: Surface | None = None, target: Surface | None = None) -> dict:
+    """Summary entries saying how far to trust a map (JSON-able).
+
+    ``rotation_ambiguous`` / ``rotation_note`` (the turn/flip ambiguity of the
+    match), and with both surfaces the cheap quality numbers
+    (:func:`surfacekit.correspondence.evaluation.quick_map_quality`, no geodesics),
+    ``map_notes`` (measure, value, verdict, meaning, rule of thumb) and
+    ``map_notes_text`` (the same as plain sentences).
+    """
+    from ..correspondence.evaluation import map_note_lines, map_notes, quick_map_quality, turn_note
+
+    info = getattr(corr, "info", {}) or {}
+    out: dict = {}
+    amb = info.get("rotation_ambiguity")
+    if amb:  # the shapes leave a turn of the map open (see sk.AmbiguousMatchWarning)
+        out["rotation_ambiguous"] = bool(amb["ambiguous"])
+        note = turn_note(info)
+        if note:
+            out["rotation_note"] = note
+    if source is not None and target is not None:
+        quality = quick_map_quality(source, target, corr)
+        notes = map_notes(quality, info)
+        out.update(map_quality=quality, map_notes=notes, map_notes_text=map_note_lines(notes))
+    return out
+
+
+def trust_report_parts(trust: dict) -> tuple[dict, dict]:
+    """``(summary entries, {caption: rows})`` of :func:`map_trust` for a report.
+
+    The summary keeps the turn note and one plain verdict per measure; the
+    table lists each measure with its meaning and rule of thumb.
+    """
+    summary = {k: v for k, v in trust.items() if k not in TRUST_KEYS}
+    notes = trust.get("map_notes") or []
+    for n in notes:
+        value = n["value"] if isinstance(n["value"], str) else f"{n['value']:.3g}"
+        summary[f"map {n['measure']}"] = f"{value} ({n['verdict']})"
+    rows = [{"measure": n["measure"], "value": n["value"], "verdict": n["verdict"],
+             "meaning": n["meaning"], "rule of thumb": n["rule"]} for n in notes]
+    return summary, ({TRUST_TABLE: rows} if rows else {})
