@@ -99,3 +99,49 @@ def painted(png: bytes, width_fraction: float = 0.75) -> tuple[float, int]:
     flat = np.round(img.reshape(-1, 3) * 255).astype(int)
     not_white = (255 - flat).max(axis=1) > 30
     return float(not_white.mean()), len(np.unique(flat @ np.array([65536, 256, 1])))
+
+
+def inspect_layout(html_path: Path, *, width: int = 1280, narrow: int = 900) -> dict:
+    """Page width, section titles, and every field's caption and colour-bar title after
+    choosing it in the menu, for a report opened at a `width` px window.
+
+    Returns ``{"scroll_width": int, "titles": [...], "fields": {panel id: [(option,
+    caption, colour-bar title), ...]}, "narrow": {"scroll_width": int, "plots": [(plot
+    width, box width), ...]}}``; ``narrow`` is measured after resizing the window to
+    `narrow` px (3D views must shrink with it).
+    """
+    from playwright.sync_api import sync_playwright
+
+    out: dict = {"fields": {}}
+    with sync_playwright() as pw:
+        browser = pw.chromium.launch(executable_path=chromium_path(), args=FLAGS)
+        try:
+            page = browser.new_page(viewport={"width": width, "height": 1000})
+            page.goto(Path(html_path).resolve().as_uri(), wait_until="load", timeout=120_000)
+            page.wait_for_function("document.body.getAttribute('data-sk-rendered') !== null",
+                                   timeout=120_000)
+            page.wait_for_timeout(1000)
+            out["scroll_width"] = page.evaluate("document.documentElement.scrollWidth")
+            out["titles"] = page.evaluate(
+                "Array.from(document.querySelectorAll('h2')).map(e => e.textContent)")
+            for sel in page.locator("select[id$='-select']").all():
+                panel = sel.get_attribute("id")[: -len("-select")]
+                seen = []
+                for value in sel.evaluate("s => Array.from(s.options).map(o => o.value)"):
+                    sel.select_option(value)
+                    page.wait_for_timeout(300)
+                    seen.append((value, page.inner_text(f"#{panel}-desc"), page.evaluate(
+                        f"Array.from(document.querySelectorAll('#{panel} .cbtitle'))"
+                        ".map(e => e.textContent).join(' | ')")))
+                out["fields"][panel] = seen
+            page.set_viewport_size({"width": narrow, "height": 1000})
+            page.wait_for_timeout(1500)
+            out["narrow"] = {
+                "scroll_width": page.evaluate("document.documentElement.scrollWidth"),
+                "plots": page.evaluate(
+                    "Array.from(document.querySelectorAll('.plot3d')).map(d => "
+                    "[d.querySelector('.main-svg').getBoundingClientRect().width, "
+                    "d.getBoundingClientRect().width])")}
+        finally:
+            browser.close()
+    return out

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import json
 import re
+from html import escape as html_escape
 
 import numpy as np
 import pytest
@@ -73,10 +74,43 @@ def test_diverging_scale_is_centred_on_zero_and_layers_switch(tmp_path, kidney):
     assert regions["colorbar.ticktext"][0] == ["left", "right"]
     assert regions["intensitymode"] == ["cell", "cell"]  # flat colour per triangle
     assert len(regions["intensity"][0]) == kidney.n_faces
-    assert set(regions["intensity"][0]) == {1, 2}
-    assert regions["cmin"][0] == 0.5 and regions["cmax"][0] == 2.5
+    assert set(regions["intensity"][0]) == {0, 1}  # band index of each region present
+    assert regions["cmin"][0] == -0.5 and regions["cmax"][0] == 1.5  # one band per region
+    # each field carries the caption of its own colour scale
+    captions = [layer["caption"] for layer in spec["layers"]]
+    assert "centred on zero" in captions[0] and "Not defined on b" in captions[0]
+    assert "sequential scale from 0 (light) to 1 (dark)" in captions[1]
+    assert "centred on zero" not in captions[1] + captions[2]
+    assert "one colour per region (left, right)" in captions[2]
+    assert f"id='sk-panel-0-desc' aria-live='polite'>{html_escape(captions[0])}<" in html
     assert len(spec["figure"]["data"][0]["intensity"]) == kidney.n_vertices
     assert "sk-panel-0-select" in html and html.count("<option") == 3
+
+
+def test_tables_fit_and_headers_read_as_words(tmp_path):
+    """Wide tables are transposed, headers are words with units, section titles are unique."""
+    from surfacekit.app.report import readable
+
+    assert readable("mean_abs_normal_displacement_mm") == "Mean |normal displacement| (mm)"
+    assert readable("area_mm2") == "Area (mm²)"
+    assert readable("n_components") == "Number of components"
+    assert readable("volume_change_percent") == "Volume change (%)"
+    assert readable("some_new_key") == "Some new key"  # unknown keys: a readable fallback
+    assert readable("true volume (ml)") == "true volume (ml)"  # already written for people
+    wide = [{"surface": f"s{i}", **{f"measure_{j}_mm": float(j) for j in range(30)}}
+            for i in range(3)]
+    html = write_report(tmp_path / "r.html", title="t", tables={"Summary": wide, "Surfaces": [],
+                                                                 "Surfaces ": wide[:1]},
+                        summary={"volume_ml": 1.0}).read_text()
+    body = html.split("<table class='transposed'>", 1)[1].split("</table>", 1)[0]
+    assert body.count("<tr>") == 31  # header row + one row per measure
+    assert "<th>s0</th><th>s1</th><th>s2</th>" in body
+    assert "Measure 7 (mm)" in body and "measure_7_mm" not in html
+    assert "Volume (ml)" in html
+    titles = re.findall(r"<h2>(.*?)</h2>", html)
+    assert len(titles) == len({t.casefold().strip() for t in titles}), titles
+    assert "Summary (2)" in titles
+    assert html.count("<div class='table-wrap'>") == 4  # every table scrolls in its own box
 
 
 def test_bad_layers_are_refused(tmp_path, kidney):
@@ -106,6 +140,30 @@ def test_png_figures_written_and_embedded(tmp_path, kidney):
         assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec, ISO 15948)
     assert html.count("data:image/png;base64,") == 3
     assert "<script" not in html  # no 3D panel, no plotly.js needed
+
+
+def test_png_views_are_labelled_and_regions_get_a_legend(kidney):
+    """Each PNG view names its direction; regions get one swatch per name, not a 0-9 bar.
+
+    Camera position of a 3D view: along (cos e cos a, cos e sin a, sin e) for elevation e
+    and azimuth a (matplotlib documentation, ``mpl_toolkits.mplot3d.axes3d.Axes3D.view_init``).
+    """
+    assert report_figures.view_name(0, 0) == "view from +x"
+    assert report_figures.view_name(15, -90) == "view from −y, 15° above (+z)"
+    assert report_figures.view_name(90, 0) == "view from +z"
+    assert report_figures.view_name(-20, 180) == "view from −x, 20° below (−z)"
+    labels = np.where(kidney.vertices[:, 0] > 0, 3, 7)
+    fig = report_figures.surface_figure(kidney, labels, title="region", kind="labels",
+                                        label_names={3: "left", 7: "right"})
+    assert [ax.get_title() for ax in fig.axes] == ["view from −y, 15° above (+z)",
+                                                   "view from +y, 15° above (+z)"]
+    legend = fig.legends[0]
+    assert [t.get_text() for t in legend.get_texts()] == ["left", "right"]
+    assert len(fig.axes) == 2  # no colour bar axis for a categorical field
+    report_figures.close(fig)
+    fig = report_figures.surface_figure(kidney, kidney.vertices[:, 0], title="x", kind="diverging")
+    assert len(fig.axes) == 3 and not fig.legends  # two views and one colour bar
+    report_figures.close(fig)
 
 
 def test_map_distortion_definition(kidney):

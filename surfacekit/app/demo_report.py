@@ -96,7 +96,8 @@ def write_demo_report(out: Path, *, base, follow, follow_mesh, result, corr_mesh
     regional = change.regional_table()
     figures = change_figures(base, change, regional, corr)
     figures["Template regions"] = rfig.surface_figure(template[0], template[1], title="region",
-                                                      kind="labels")
+                                                      kind="labels",
+                                                      label_names=demo_data.REGION_NAMES)
     names = ("baseline (scanner A)", "follow-up (scanner B, from segmentation)")
     panels: list[ReportPanel] = [
         change_panel(names[0], base, names[1], follow, corr, change, result.labels,

@@ -28,42 +28,87 @@ def _cmap(kind: str):
     return LinearSegmentedColormap.from_list(f"sk_{kind}", [(p, c) for p, c in scale])
 
 
+def view_name(elev: float, azim: float) -> str:
+    """Where the camera of a matplotlib 3D view sits, in words: "view from −y, above (+z)".
+
+    Matplotlib places the eye along (cos e cos a, cos e sin a, sin e) for elevation e
+    and azimuth a (``Axes3D.view_init``); the label names the dominant axis and
+    whether the eye is above or below the x-y plane.
+    """
+    e, a = np.radians(elev), np.radians(azim)
+    eye = np.array([np.cos(e) * np.cos(a), np.cos(e) * np.sin(a), np.sin(e)])
+    k = int(np.argmax(np.abs(eye)))
+    text = f"view from {'+' if eye[k] >= 0 else '−'}{'xyz'[k]}"
+    if k != 2 and abs(elev) >= 5:
+        text += f", {abs(elev):.0f}° {'above (+z)' if elev > 0 else 'below (−z)'}"
+    return text
+
+
+def _label_style(values: np.ndarray, label_names: dict | None):
+    """Colours, norm and legend handles of a categorical (region) field: one swatch per region."""
+    from matplotlib.colors import BoundaryNorm, ListedColormap
+    from matplotlib.patches import Patch
+
+    from . import panels
+
+    present = sorted({int(v) for v in np.unique(values)})
+    colours = [panels.LABEL_COLOURS[lab % len(panels.LABEL_COLOURS)] for lab in present]
+    names = [(label_names or {}).get(lab, f"region {lab}") for lab in present]
+    index = np.searchsorted(present, np.rint(values).astype(int))
+    norm = BoundaryNorm(np.arange(len(present) + 1) - 0.5, len(present))
+    handles = [Patch(facecolor=c, edgecolor="#555555", label=n) for c, n in zip(colours, names)]
+    return ListedColormap(colours), norm, index, handles
+
+
 def surface_figure(surface: Surface, values: np.ndarray, *, title: str, kind: str = "sequential",
-                   unit: str = "", views: Sequence[tuple[float, float]] = ((15, -90), (15, 90))):
+                   unit: str = "", views: Sequence[tuple[float, float]] = ((15, -90), (15, 90)),
+                   label_names: dict[int, str] | None = None):
     """Two views of a surface coloured by a per-vertex field (face colour = mean of its vertices).
 
-    Diverging fields use limits symmetric about zero, so white means no change.
+    Each view is titled with its direction (:func:`view_name`).  Diverging fields use
+    limits symmetric about zero, so white means no change; sequential fields run from
+    their 1st to 99th percentile; region labels get one flat colour per triangle (the
+    label of its first corner) and a legend with one swatch per region name.
     """
     from matplotlib.colors import Normalize
     from mpl_toolkits.mplot3d.art3d import Poly3DCollection
 
     plt = _plt()
     values = np.asarray(values, dtype=float)
-    face_values = values[surface.faces].mean(axis=1)
-    if kind == "diverging":
-        m = float(np.percentile(np.abs(values), 99)) or 1.0
-        norm = Normalize(-m, m)
-    elif kind == "labels":
-        norm = Normalize(-0.5, 9.5)
+    handles = None
+    if kind == "labels":
+        cmap, norm, index, handles = _label_style(values, label_names)
+        face_values = index[surface.faces[:, 0]].astype(float)
     else:
-        lo, hi = np.percentile(values, [1, 99])
-        norm = Normalize(lo, hi if hi > lo else lo + 1)
-    cmap = _cmap(kind)
-    fig = plt.figure(figsize=(4.2 * len(views) + 0.8, 4.0))
-    v = surface.vertices - surface.vertices.mean(axis=0)
-    lim = float(np.abs(v).max())
+        face_values = values[surface.faces].mean(axis=1)
+        cmap = _cmap(kind)
+        if kind == "diverging":
+            m = float(np.percentile(np.abs(values), 99)) or 1.0
+            norm = Normalize(-m, m)
+        else:
+            lo, hi = np.percentile(values, [1, 99])
+            norm = Normalize(lo, hi if hi > lo else lo + 1)
+    fig = plt.figure(figsize=(4.2 * len(views) + 1.2, 3.8))
+    v = surface.vertices - 0.5 * (surface.vertices.min(axis=0) + surface.vertices.max(axis=0))
+    half = np.maximum(0.5 * np.ptp(v, axis=0), 1e-9 * max(float(np.ptp(v)), 1.0))
     for n, (elev, azim) in enumerate(views):
         ax = fig.add_subplot(1, len(views), n + 1, projection="3d")
-        poly = Poly3DCollection(v[surface.faces], facecolors=cmap(norm(face_values)),
-                                edgecolors="none", linewidths=0)
+        colours = cmap(norm(face_values))  # edges in the face colour: no seams between faces
+        poly = Poly3DCollection(v[surface.faces], facecolors=colours, edgecolors=colours,
+                                linewidths=0.3)
         ax.add_collection3d(poly)
-        ax.set_xlim(-lim, lim), ax.set_ylim(-lim, lim), ax.set_zlim(-lim, lim)
+        ax.set_xlim(-half[0], half[0]), ax.set_ylim(-half[1], half[1])
+        ax.set_zlim(-half[2], half[2])
         ax.view_init(elev=elev, azim=azim)
         ax.set_axis_off()
-        ax.set_box_aspect((1, 1, 1))
-    sm = plt.cm.ScalarMappable(norm=norm, cmap=cmap)
-    cbar = fig.colorbar(sm, ax=fig.axes, shrink=0.7, pad=0.02)
-    cbar.set_label(f"{title} ({unit})" if unit else title)
+        ax.set_box_aspect(tuple(half / half.max()))
+        ax.set_title(view_name(elev, azim), fontsize=10, color="#3a4650")
+    label = f"{title} ({unit})" if unit else title
+    if handles is not None:
+        fig.legend(handles=handles, title=label, loc="center right", frameon=False, fontsize=9)
+    else:
+        sm = plt.cm.ScalarMappable(norm=norm, cmap=cmap)
+        fig.colorbar(sm, ax=fig.axes, shrink=0.7, pad=0.02).set_label(label)
     fig.suptitle(title)
     return fig
 

@@ -85,15 +85,15 @@ def _layer_style(layer: ReportLayer) -> dict:
         data = np.zeros(1)
     style: dict[str, Any] = {"tickvals": None, "ticktext": None}
     if layer.kind == "labels":
-        lo, hi = int(data.min()), int(max(data.max(), data.min() + 1))
-        span = hi - lo + 1
-        scale = []
-        for i in range(span):  # stepped scale: one flat band per label value
-            c = LABEL_COLOURS[(lo + i) % len(LABEL_COLOURS)]
-            scale += [[i / span, c], [(i + 1) / span, c]]
+        # categorical: one flat band per region present, in order, named on the colour bar
         present = sorted({int(v) for v in np.unique(data)})
-        style.update(colorscale=scale, cmin=lo - 0.5, cmax=hi + 0.5, tickvals=present,
-                     ticktext=[(layer.label_names or {}).get(i, str(i)) for i in present])
+        scale = []
+        for i, lab in enumerate(present):
+            c = LABEL_COLOURS[lab % len(LABEL_COLOURS)]
+            scale += [[i / len(present), c], [(i + 1) / len(present), c]]
+        style.update(colorscale=scale, cmin=-0.5, cmax=len(present) - 0.5, present=present,
+                     tickvals=list(range(len(present))),
+                     ticktext=[(layer.label_names or {}).get(i, f"region {i}") for i in present])
     elif layer.kind == "diverging":
         # symmetric limits put zero exactly at the middle (white) of the scale
         m = float(np.percentile(np.abs(data), 99)) if layer.limits is None else max(map(abs, layer.limits))
@@ -106,6 +106,28 @@ def _layer_style(layer: ReportLayer) -> dict:
             hi = lo + 1.0
         style.update(colorscale=CYCLIC if layer.kind == "cyclic" else SEQUENTIAL, cmin=lo, cmax=hi)
     return style
+
+
+def scale_caption(layer: ReportLayer, style: dict, surfaces: list) -> str:
+    """The field's name, its description and a sentence on its colour scale (shown under the menu)."""
+    unit = f" {layer.unit}" if layer.unit else ""
+    if layer.kind == "diverging":
+        scale = (f"Colour: diverging scale centred on zero (white = no change, red positive, "
+                 f"blue negative), limits ±{style['cmax']:.3g}{unit}.")
+    elif layer.kind == "labels":
+        scale = f"Colour: one colour per region ({', '.join(style['ticktext'])})."
+    elif layer.kind == "cyclic":
+        scale = (f"Colour: cyclic scale from {style['cmin']:.3g} to {style['cmax']:.3g}{unit}; "
+                 f"the two ends have the same colour.")
+    else:
+        scale = (f"Colour: sequential scale from {style['cmin']:.3g} (light) to "
+                 f"{style['cmax']:.3g}{unit} (dark).")
+    missing = [name for (name, _), v in zip(surfaces, layer.values) if v is None]
+    if missing:
+        scale += f" Not defined on {', '.join(missing)} (shown grey)."
+    name = f"{layer.name} ({layer.unit})" if layer.unit else layer.name
+    return " ".join(t for t in (f"{name[:1].upper()}{name[1:]}:", layer.description.strip(), scale)
+                    if t)
 
 
 def _face_labels(faces: np.ndarray, labels: np.ndarray) -> np.ndarray:
@@ -151,6 +173,7 @@ def _layer_update(layer: ReportLayer, surfaces: list) -> dict:
             # one flat colour per triangle: interpolating labels across a face would
             # paint the colours of unrelated labels along region borders
             vals, mode = _face_labels(s.faces, vals), "cell"
+            vals = np.searchsorted(style["present"], vals).astype(float)
         upd["intensity"].append(_rounded(vals))
         upd["intensitymode"].append(mode)
         upd["colorscale"].append(scale)
@@ -189,6 +212,7 @@ def panel_spec(panel: ReportPanel, div_id: str) -> dict:
     surfaces = list(panel.surfaces)
     offsets, gap = _offsets(surfaces)
     updates = [_layer_update(layer, surfaces) for layer in panel.layers]
+    captions = [scale_caption(layer, _layer_style(layer), surfaces) for layer in panel.layers]
     traces, annotations = [], []
     for i, ((name, s), offset) in enumerate(zip(surfaces, offsets)):
         v = s.vertices + offset
@@ -198,11 +222,13 @@ def panel_spec(panel: ReportPanel, div_id: str) -> dict:
                             "text": f"<b>{esc(name)}</b>", "showarrow": False,
                             "font": {"size": 13, "color": "#1f2a33"}})
     axis = {"visible": False, "showbackground": False}
-    layout = {"margin": {"l": 0, "r": 0, "t": 10, "b": 0}, "paper_bgcolor": "#ffffff",
+    layout = {"margin": {"l": 0, "r": 0, "t": 0, "b": 0}, "paper_bgcolor": "#ffffff",
+              "autosize": True,
               "scene": {"xaxis": axis, "yaxis": axis, "zaxis": axis, "aspectmode": "data",
                         "annotations": annotations,
-                        "camera": {"eye": {"x": 0.0, "y": -1.6, "z": 0.9}}}}
+                        "camera": {"eye": {"x": 0.0, "y": -1.75, "z": 0.85}},
+                        "domain": {"x": [0.0, 0.84], "y": [0.0, 1.0]}}}
     return {"div": div_id, "figure": {"data": traces, "layout": layout},
             "layers": [{"update": u, "traces": list(range(len(surfaces))),
-                        "description": layer.description}
-                       for u, layer in zip(updates, panel.layers)]}
+                        "description": layer.description, "caption": caption}
+                       for u, layer, caption in zip(updates, panel.layers, captions)]}

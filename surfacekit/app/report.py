@@ -32,17 +32,29 @@ import numpy as np
 from ..io.files import atomic_path
 from ..io.tables import RESEARCH_NOTE
 from .panels import ReportLayer, ReportPanel, esc, panel_spec
+from .report_labels import readable
 
-__all__ = ["ReportLayer", "ReportPanel", "esc", "figure_png", "html_table", "slug", "versions",
-           "write_report"]
+__all__ = ["ReportLayer", "ReportPanel", "esc", "figure_png", "html_table", "readable", "slug",
+           "versions", "write_report"]
 
 
 @dataclass
 class _Page:
     parts: list[str] = field(default_factory=list)
+    titles: set[str] = field(default_factory=set)
 
     def add(self, text: str) -> None:
         self.parts.append(text)
+
+    def title(self, text: str) -> str:
+        """A section title not used before on this page (a repeat gets " (2)", " (3)", ...)."""
+        text = " ".join(str(text).split())
+        unique, n = text, 1
+        while unique.casefold() in self.titles:
+            n += 1
+            unique = f"{text} ({n})"
+        self.titles.add(unique.casefold())
+        return unique
 
 
 def _script_json(obj: Any) -> str:
@@ -74,10 +86,34 @@ def _fmt(value: Any) -> str:
     return str(value)
 
 
-def html_table(rows: Sequence[dict] | dict, *, columns: Sequence[str] | None = None) -> str:
-    """An escaped HTML table from a list of dicts (or one dict shown as name/value rows)."""
+def _label_column(rows: list[dict], columns: Sequence[str]) -> str | None:
+    """The first column holding a text name in every row (used as header when transposed)."""
+    for c in columns:
+        if all(isinstance(r.get(c), str) for r in rows):
+            return c
+    return None
+
+
+def _cell(v: Any) -> str:
+    num = isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
+    return f"<td class='num'>{esc(_fmt(v))}</td>" if num else f"<td>{esc(_fmt(v))}</td>"
+
+
+def html_table(rows: Sequence[dict] | dict, *, columns: Sequence[str] | None = None,
+               max_columns: int = 8, words: bool = True) -> str:
+    """An escaped HTML table from a list of dicts (or one dict shown as name/value rows).
+
+    Headers (and the names of a name/value table) are shown in words with units
+    (:func:`surfacekit.app.report_labels.readable`).  A table with more than
+    `max_columns` columns and fewer rows than columns is transposed: one row per
+    measure, one column per record (named by its first text column).  Every table
+    sits in its own horizontally scrolling box, so the page never grows wider
+    than the window.  With ``words=False`` names are shown exactly as given (provenance:
+    the record of options and inputs as the user typed them).
+    """
+    name = readable if words else str
     if isinstance(rows, dict):
-        rows = [{"name": k, "value": v} for k, v in rows.items()]
+        rows = [{"name": name(k), "value": v} for k, v in rows.items()]
     rows = list(rows)
     if not rows:
         return "<p class='note'>(no rows)</p>"
@@ -85,16 +121,24 @@ def html_table(rows: Sequence[dict] | dict, *, columns: Sequence[str] | None = N
         columns = []
         for r in rows:
             columns += [c for c in r if c not in columns]
-    out = ["<table><thead><tr>", *(f"<th>{esc(c)}</th>" for c in columns), "</tr></thead><tbody>"]
-    for r in rows:
-        out.append("<tr>")
+    head = _label_column(rows, columns)
+    if len(columns) > max_columns and len(rows) < len(columns):
+        names = ([r.get(head) for r in rows] if head else
+                 ["Value"] if len(rows) == 1 else [f"#{i + 1}" for i in range(len(rows))])
+        out = ["<table class='transposed'><thead><tr>",
+               f"<th>{esc(name(head) if head else 'Measure')}</th>",
+               *(f"<th>{esc(_fmt(n))}</th>" for n in names), "</tr></thead><tbody>"]
         for c in columns:
-            v = r.get(c)
-            num = isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool)
-            out.append(f"<td class='num'>{esc(_fmt(v))}</td>" if num else f"<td>{esc(_fmt(v))}</td>")
-        out.append("</tr>")
+            if c != head:
+                out += [f"<tr><th scope='row'>{esc(name(c))}</th>",
+                        *(_cell(r.get(c)) for r in rows), "</tr>"]
+    else:
+        out = ["<table><thead><tr>", *(f"<th>{esc(name(c))}</th>" for c in columns),
+               "</tr></thead><tbody>"]
+        for r in rows:
+            out += ["<tr>", *(_cell(r.get(c)) for c in columns), "</tr>"]
     out.append("</tbody></table>")
-    return "".join(out)
+    return "<div class='table-wrap'>" + "".join(out) + "</div>"
 
 
 def figure_png(fig, *, close: bool = False) -> bytes:
@@ -139,6 +183,7 @@ _JS = """
     var div = document.getElementById(spec.div);
     Plotly.newPlot(div, spec.figure.data, spec.figure.layout,
                    {responsive: true, displaylogo: false}).then(function () {
+      Plotly.Plots.resize(div);
       done += 1; document.body.setAttribute('data-sk-rendered', String(done));
     });
     var sel = document.getElementById(spec.div + '-select');
@@ -146,11 +191,25 @@ _JS = """
     sel.addEventListener('change', function () {
       var layer = spec.layers[Number(sel.value)];
       Plotly.restyle(div, layer.update, layer.traces);
-      desc.textContent = layer.description;
+      desc.textContent = layer.caption;
     });
   });
 })();
 """
+
+
+def _panel_html(panel: ReportPanel, spec: dict) -> str:
+    """The heading, field menu, per-field caption and plot box of one 3D view."""
+    div_id = spec["div"]
+    options = "".join(f"<option value='{i}'>{esc(layer.name)}</option>"
+                      for i, layer in enumerate(panel.layers))
+    note = f"<div class='note'>{esc(panel.note)}</div>" if panel.note else ""
+    return (f"<div class='panel'><h3>{esc(panel.title)}</h3><div class='controls'>"
+            f"<label for='{div_id}-select'>Field shown:</label>"
+            f"<select id='{div_id}-select'>{options}</select></div>"
+            f"<p class='caption' id='{div_id}-desc' aria-live='polite'>"
+            f"{esc(spec['layers'][0]['caption'])}</p>"
+            f"<div class='plot3d' id='{div_id}'></div>{note}</div>")
 
 
 def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
@@ -190,27 +249,18 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
         page.add(f"<section class='warnings' id='sk-warnings' role='alert'><h2>Warnings "
                  f"({len(warnings)})</h2><ul>{items}</ul></section>")
     if summary:
-        page.add(f"<section><h2>Summary</h2>{html_table(summary)}</section>")
+        page.add(f"<section><h2>{esc(page.title('Summary'))}</h2>{html_table(summary)}</section>")
     specs = []
     if panels:
-        page.add("<section><h2>Surfaces</h2>")
+        page.add(f"<section><h2>{esc(page.title('Interactive 3D views'))}</h2>")
         for n, panel in enumerate(panels):
-            div_id = f"sk-panel-{n}"
-            spec = panel_spec(panel, div_id)
-            specs.append(spec)
-            options = "".join(f"<option value='{i}'>{esc(layer.name)}</option>"
-                              for i, layer in enumerate(panel.layers))
-            page.add(f"<div class='panel'><h3>{esc(panel.title)}</h3><div class='controls'>"
-                     f"<label for='{div_id}-select'>Field shown:</label>"
-                     f"<select id='{div_id}-select'>{options}</select>"
-                     f"<span class='note' id='{div_id}-desc'>{esc(panel.layers[0].description)}</span>"
-                     f"</div><div class='plot3d' id='{div_id}'></div>"
-                     f"<div class='note'>{esc(panel.note)}</div></div>")
+            specs.append(panel_spec(panel, f"sk-panel-{n}"))
+            page.add(_panel_html(panel, specs[-1]))
         page.add("</section>")
     for caption, rows in (tables or {}).items():
-        page.add(f"<section><h2>{esc(caption)}</h2>{html_table(rows)}</section>")
+        page.add(f"<section><h2>{esc(page.title(caption))}</h2>{html_table(rows)}</section>")
     if figures:
-        page.add("<section><h2>Figures</h2>")
+        page.add(f"<section><h2>{esc(page.title('Figures'))}</h2><div class='figures'>")
         if figure_dir is not None:
             Path(figure_dir).mkdir(parents=True, exist_ok=True)
         for caption, fig in figures.items():
@@ -222,16 +272,16 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
             data = base64.b64encode(png).decode("ascii")
             page.add(f"<figure><img alt='{esc(caption)}' src='data:image/png;base64,{data}'>"
                      f"<figcaption>{esc(caption)}</figcaption></figure>")
-        page.add("</section>")
+        page.add("</div></section>")
     prov = dict(provenance or {})
     prov.setdefault("created", datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC"))
-    page.add("<section><h2>Provenance</h2>")
+    page.add(f"<section><h2>{esc(page.title('Provenance'))}</h2>")
     for key, value in prov.items():
         if isinstance(value, dict) or (isinstance(value, list) and value and isinstance(value[0], dict)):
-            page.add(f"<h3>{esc(key)}</h3>{html_table(value)}")
+            page.add(f"<h3>{esc(key)}</h3>{html_table(value, words=False)}")
         else:
             page.add(f"<p><b>{esc(key)}:</b> {esc(_fmt(value))}</p>")
-    page.add(f"<h3>versions</h3>{html_table(versions())}</section>")
+    page.add(f"<h3>versions</h3>{html_table(versions(), words=False)}</section>")
     page.add(f"</main><footer>{esc(RESEARCH_NOTE)} Made with surfacekit.</footer>")
     if specs:
         import plotly.offline

@@ -108,6 +108,7 @@ def change_panel(baseline_name: str, baseline: Surface, followup_name: str, foll
                     description="Length of the displacement after rigid alignment."),
     ]
     if labels is not None:
+        label_names = label_names or getattr(change, "region_names", None) or None
         carried = np.asarray(corr.transfer(np.asarray(labels), labels=True))
         layers.append(ReportLayer("regions", [np.asarray(labels), carried], kind="labels",
                                   label_names=label_names,
@@ -120,8 +121,8 @@ def change_panel(baseline_name: str, baseline: Surface, followup_name: str, foll
         shown = followup.copy_with(vertices=followup.vertices @ r[:3, :3].T + r[:3, 3])
     return ReportPanel(f"Change {baseline_name} → {followup_name}",
                        [(baseline_name, baseline), (followup_name, shown)], layers,
-                       note="Change maps use a diverging scale centred on zero (white = no "
-                            "change); the follow-up is shown rigidly aligned to the baseline.")
+                       note="The follow-up is shown rigidly aligned to the baseline, as the "
+                            "change is measured; drag to rotate, scroll to zoom.")
 
 
 def change_figures(baseline: Surface, change, regional: list[dict] | None = None,
