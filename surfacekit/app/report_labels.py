@@ -13,7 +13,7 @@ __all__ = ["readable"]
 
 # exact keys whose plain reading would be wrong or clumsy
 KNOWN = {
-    "n_vertices": "Vertices", "n_faces": "Faces", "vertices": "Vertices", "faces": "Faces",
+    "vertices": "Vertices", "faces": "Faces",
     "p_fwer": "p (FWER)", "q_fdr": "q (FDR)", "t": "t", "label": "Label", "name": "Name",
     "value": "Value", "sha256": "SHA-256", "euler_characteristic": "Euler characteristic",
     "coverage_target": "Coverage of the target (fraction)",
@@ -50,6 +50,6 @@ def readable(key) -> str:
         i = tokens.index("abs")
         inner = " ".join(words[i + 1:])
         words = words[:i] + ([f"|{inner}|"] if inner else ["absolute"])
-    phrase = prefix + " ".join(words)
+    phrase = (prefix + " ".join(words)).replace("non ", "non-")
     phrase = phrase[:1].upper() + phrase[1:]
     return f"{phrase} ({unit})" if unit else phrase
