@@ -15,6 +15,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from ..mesh.connectivity import Connectivity
 from ..mesh.limits import MERGE_TOLERANCE, NEEDLE_ANGLE_DEGREES
 from ..mesh.surface import Surface
 
@@ -46,6 +47,21 @@ def group_representatives(pairs: np.ndarray, n: int) -> np.ndarray:
     first = np.full(labels.max() + 1, n, dtype=np.int64)
     np.minimum.at(first, labels, np.arange(n))
     return first[labels]
+
+
+def part_labels(faces: np.ndarray, n_vertices: int | None = None) -> np.ndarray:
+    """(m,) part label of each face: connected components of faces sharing an edge.
+
+    These are the parts a user sees: pieces that touch only at a vertex (a pinched
+    vertex with several face fans) are separate parts, unlike vertex connectivity.
+    """
+    conn = Connectivity(faces, n_vertices)
+    m = conn.n_faces
+    if m == 0:
+        return np.zeros(0, np.int64)
+    g = sp.coo_matrix((np.ones(3 * m), (np.repeat(np.arange(m), 3), conn.half_edge_edge)),
+                      shape=(m, len(conn.edges))).tocsr()
+    return connected_components(g @ g.T, directed=False)[1]
 
 
 def degenerate_faces(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
@@ -143,7 +159,8 @@ def _plural(n: int, word: str, plural: str | None = None) -> str:
 def quality_report(surface: Surface) -> QualityReport:
     """Measure the flaws and shape quality of a surface.
 
-    Counts components, boundary loops (holes), non-manifold edges (more than two
+    Counts components (parts joined through edges, so pieces touching only at a
+    vertex are separate, see :func:`part_labels`), boundary loops (holes), non-manifold edges (more than two
     faces) and vertices (several face fans), coincident vertices, duplicated and
     degenerate faces, unreferenced vertices, and edges whose two faces are
     oriented inconsistently; genus from the Euler characteristic
@@ -178,14 +195,17 @@ def quality_report(surface: Surface) -> QualityReport:
     angles = np.rad2deg(s.face_angles.min(axis=1))
     angles = angles[np.isfinite(angles)]
     el = s.edge_lengths
-    comp_sizes = np.bincount(s.vertex_components[np.unique(f)])
-    comp_sizes = np.sort(comp_sizes[comp_sizes > 0])[::-1]
+    parts = part_labels(f, s.n_vertices)
+    n_parts = int(parts.max()) + 1 if len(parts) else 0
+    if n_parts > 1:
+        largest = np.argmax(np.bincount(parts, weights=s.face_areas))
+        extra = len(np.setdiff1d(np.unique(f[parts != largest]), f[parts == largest]))
 
     warnings: list[str] = []
-    if s.n_components > 1:
-        extra = int(comp_sizes[1:].sum())
-        warnings.append(f"{_plural(s.n_components - 1, 'extra component')} besides the largest "
-                        f"({_plural(extra, 'vertex', 'vertices')})")
+    if n_parts > 1:
+        warnings.append(f"{_plural(n_parts - 1, 'extra component')} besides the largest "
+                        f"({_plural(extra, 'vertex', 'vertices')}; pieces touching only at a "
+                        "vertex count as separate components)")
     if loops:
         warnings.append(f"{_plural(len(loops), 'hole')} (boundary loops with "
                         f"{_plural(len(s.boundary_edges), 'edge')}); the surface is not watertight")
@@ -215,7 +235,7 @@ def quality_report(surface: Surface) -> QualityReport:
                         "(a sphere-like organ has none)")
 
     return QualityReport(
-        n_vertices=s.n_vertices, n_faces=s.n_faces, n_components=int(s.n_components),
+        n_vertices=s.n_vertices, n_faces=s.n_faces, n_components=n_parts,
         n_boundary_loops=len(loops), n_boundary_edges=len(s.boundary_edges),
         n_non_manifold_edges=n_nm_edges, n_non_manifold_vertices=n_nm_vertices,
         n_duplicate_vertices=n_dup_v, n_duplicate_faces=n_dup_f, n_degenerate_faces=n_degen,

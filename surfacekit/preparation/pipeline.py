@@ -18,10 +18,10 @@ from scipy.sparse.linalg import cg
 
 from ..mesh.laplacian import cotangent_laplacian
 from ..mesh.surface import Surface, SurfaceError
-from . import repair
 from .mesh_quality import QualityReport, enclosed_centroid, quality_report
 from .remesh import improve_triangles, resample
 from .repair import umbrella_matrix
+from .routes import prepare_pieces, repair_chain, select_parts
 
 __all__ = [
     "PrepareReport",
@@ -150,6 +150,11 @@ class PrepareReport:
     volume_scale: float = 1.0
     reference_volume_mm3: float | None = None
     parameters: dict = field(default_factory=dict)
+    route: str = "repaired in place"
+    route_reason: str | None = None
+    voxel_mm: float | None = None
+    part_index: int = 0
+    n_parts: int = 1
 
     def to_dict(self) -> dict:
         d = asdict(self)
@@ -160,7 +165,8 @@ class PrepareReport:
         return json.dumps(self.to_dict(), **kwargs)
 
     def format(self) -> str:
-        lines = ["actions:"] + [f"  - {a}" for a in self.actions or ["none"]]
+        lines = [f"route: {self.route}" + (f" ({self.route_reason})" if self.route_reason else "")]
+        lines += ["actions:"] + [f"  - {a}" for a in self.actions or ["none"]]
         lines += ["before:", *("  " + x for x in self.before.format().splitlines())]
         lines += ["after:", *("  " + x for x in self.after.format().splitlines())]
         return "\n".join(lines)
@@ -168,58 +174,11 @@ class PrepareReport:
     __str__ = format
 
 
-def _vertices_word(n: int) -> str:
-    return f"{n} {'vertex' if n == 1 else 'vertices'}"
-
-
-def _repair(v: np.ndarray, f: np.ndarray, *, keep_largest: bool, max_hole_edges: int,
-            merge_tolerance: float | None) -> tuple[np.ndarray, np.ndarray, list[str]]:
-    """The topological repair chain; returns arrays and the actions in plain words."""
-    actions = []
-    v, f, n = repair.merge_duplicate_vertices(v, f, merge_tolerance)
-    if n:
-        actions.append(f"merged {_vertices_word(n)} duplicated at the same position")
-    v, f, n = repair.remove_degenerate_faces(v, f)
-    if n:
-        actions.append(f"removed {n} degenerate faces (zero area or repeated vertex)")
-    v, f, n = repair.remove_duplicate_faces(v, f)
-    if n:
-        actions.append(f"removed {n} duplicated faces")
-    v, f, n = repair.remove_non_manifold_edges(v, f)
-    if n:
-        actions.append(f"removed {n} faces attached along non-manifold edges")
-    if len(f) == 0:
-        raise SurfaceError("no valid faces left after removing degenerate and non-manifold faces")
-    v, f, n = repair.split_non_manifold_vertices(v, f)
-    if n:
-        actions.append(f"split {n} non-manifold (pinched) {'vertex' if n == 1 else 'vertices'}")
-    if keep_largest:
-        v, f, nc, nv = repair.keep_largest_component(v, f)
-        if nc:
-            actions.append(f"removed {nc} small component{'s' if nc > 1 else ''} "
-                           f"({_vertices_word(nv)}), kept the largest by area")
-    f, n = repair.orient_consistently(f)
-    if n:
-        actions.append(f"flipped {n} faces to make the orientation consistent")
-    v, f, n, left = repair.fill_holes(v, f, max_hole_edges)
-    if n:
-        actions.append(f"filled {n} hole{'s' if n > 1 else ''} (up to {max_hole_edges} edges; "
-                       "patches follow the surrounding curvature)")
-    if left:
-        actions.append(f"left {left} boundary loop{'s' if left > 1 else ''} open "
-                       f"(longer than {max_hole_edges} edges or not simple)")
-    v, f, _ = repair.compact(v, f)
-    s = Surface(v, f)  # only the signed volume is needed
-    if s.signed_volume < 0:
-        f = f[:, ::-1].copy()
-        actions.append("reversed all faces so that normals point outward")
-    return v, f, actions
-
-
 def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: bool | None = None,
             smoothing_iterations: int = 30, max_hole_edges: int = 200, keep_largest: bool = True,
             fairing_scale_mm: float | None = None, preserve_volume: bool = True,
-            merge_tolerance: float | None = None) -> tuple[Surface, PrepareReport]:
+            merge_tolerance: float | None = None, keep: str | int = "largest",
+            volumetric: bool | None = None, voxel_mm: float | None = None):
     """Repair, smooth and resample a surface into a clean, closed, outward manifold.
 
     Steps, each recorded in the report when it changes something: merge
@@ -238,24 +197,44 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     volume of the repaired, unsmoothed input (:func:`restore_volume`), so
     smoothing and decimation do not bias organ volumes.
 
+    When the surface cannot be repaired in place (it is not orientable, or closed
+    pieces of it cross each other), it is rebuilt through a volume instead
+    (:mod:`surfacekit.preparation.volumetric`): every cell of a grid of spacing
+    ``voxel_mm`` is classified inside/outside (winding number along grid lines for
+    closed orientable pieces, so overlapping pieces give their union; a 6-ray
+    parity vote for the rest), the inside cells are meshed by marching cubes as a
+    label volume is, then smoothed (on by default) and held to the inside volume
+    (inside-cell count x cell volume).  ``report.route`` and ``report.route_reason``
+    say which route was taken and why; the first action names the grid spacing.
+
     Parameters
     ----------
     surface : Surface (or anything with ``vertices`` and ``faces``, e.g. a trimesh)
     target_vertices : vertex count of the output (within 3%); None keeps the resolution
     smooth : True/False forces smoothing on/off; None (default) smooths surfaces whose
-        metadata says they come from a segmentation (staircase artefacts)
+        metadata says they come from a segmentation (staircase artefacts) and surfaces
+        rebuilt through a volume
     smoothing_iterations : number of λ|μ pairs
     fairing_scale_mm : smoothing length of the implicit fairing (mm); default the largest
-        voxel spacing in ``surface.metadata["spacing"]``, else the mean edge length; 0 skips it
+        voxel spacing in ``surface.metadata["spacing"]`` (or the grid spacing of a rebuilt
+        surface), else the mean edge length; 0 skips it
     max_hole_edges : boundary loops up to this many edges are filled
-    keep_largest : keep only the largest component (others are reported)
+    keep_largest : with ``keep="largest"``, False keeps every component in one surface
     preserve_volume : restore the enclosed volume after smoothing/resampling
     merge_tolerance : distance (mm) under which vertices are merged; default 1e-7
         of the bounding-box diagonal
+    keep : which part to return when the surface holds several: ``"largest"`` (by
+        area; by inside volume when rebuilt), ``"all"`` (each part prepared on its own,
+        a list is returned), or an int index into the parts ordered largest first.
+        Parts are pieces joined through edges (pieces touching at a vertex are separate).
+    volumetric : None (default) rebuilds through a volume only when needed; True always;
+        False never (a non-orientable surface then raises as before)
+    voxel_mm : grid spacing of the volumetric route (mm); default the mean edge length,
+        at most 1/64 of the longest side, coarsened to stay below 8 million cells
 
     Returns
     -------
-    (Surface, PrepareReport)
+    (Surface, PrepareReport), or for ``keep="all"`` a list of them, largest first.
         The output is one watertight, consistently oriented, outward manifold when
         the input encloses a volume; otherwise ``report.after.warnings`` says what
         is left (for example a hole longer than ``max_hole_edges``).
@@ -263,7 +242,8 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     Raises
     ------
     SurfaceError
-        When nothing valid is left or the surface is not orientable.
+        When nothing valid is left, the surface encloses no grid cell, or (with
+        ``volumetric=False``) the surface is not orientable.
     """
     if not isinstance(surface, Surface):
         if hasattr(surface, "vertices") and hasattr(surface, "faces"):
@@ -275,20 +255,47 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         raise ValueError(f"target_vertices must be an integer >= 4, got {target_vertices!r}")
     if smoothing_iterations < 0 or max_hole_edges < 0:
         raise ValueError("smoothing_iterations and max_hole_edges must be >= 0")
-    metadata = dict(surface.metadata)
-    if smooth is None:
-        smooth = bool(metadata.get("from_segmentation", False))
+    if keep not in ("largest", "all") and (isinstance(keep, (bool, str, float))
+                                           or not float(keep).is_integer()):
+        raise ValueError(f"keep must be 'largest', 'all' or a part index, got {keep!r}")
+    if voxel_mm is not None and not (np.isfinite(voxel_mm) and voxel_mm > 0):
+        raise ValueError(f"voxel_mm must be a positive number of mm, got {voxel_mm!r}")
     params = {"target_vertices": target_vertices, "smooth": smooth,
               "smoothing_iterations": smoothing_iterations, "max_hole_edges": max_hole_edges,
-              "keep_largest": keep_largest, "preserve_volume": preserve_volume}
+              "keep_largest": keep_largest, "preserve_volume": preserve_volume, "keep": keep,
+              "volumetric": volumetric, "voxel_mm": voxel_mm}
     before = quality_report(surface)
     opts = {"keep_largest": keep_largest, "max_hole_edges": max_hole_edges,
             "merge_tolerance": merge_tolerance}
-    v, f, actions = _repair(np.array(surface.vertices), np.array(surface.faces), **opts)
-    s = Surface(v, f, metadata=metadata)
-    reference = s.signed_volume if s.is_closed else None
-    report = PrepareReport(before=before, after=before, actions=actions,
-                           reference_volume_mm3=reference, parameters=params)
+    pieces, route = prepare_pieces(surface, keep, keep_largest, volumetric, voxel_mm, opts)
+    chosen = select_parts(pieces, keep if keep in ("largest", "all") else int(keep))
+    out = []
+    for k, (v, f, actions, reference, spacing) in enumerate(chosen):
+        metadata = dict(surface.metadata)
+        if spacing is not None:
+            metadata.update(spacing=spacing, voxel_mm=route["voxel_mm"])
+        index = k if keep in ("largest", "all") else int(keep) % len(pieces)
+        report = PrepareReport(before=before, after=before, actions=actions,
+                               reference_volume_mm3=reference, parameters=dict(params),
+                               route=route["route"], route_reason=route["reason"],
+                               voxel_mm=route["voxel_mm"], part_index=index,
+                               n_parts=route["n_parts"])
+        do_smooth = (spacing is not None) if smooth is None else smooth
+        if smooth is None and spacing is None:
+            do_smooth = bool(metadata.get("from_segmentation", False))
+        s = Surface(v, f, metadata=metadata)
+        out.append(_finish(s, report, do_smooth, smoothing_iterations, fairing_scale_mm,
+                           target_vertices, preserve_volume, opts))
+    return out if keep == "all" else out[0]
+
+
+def _finish(s: Surface, report: PrepareReport, smooth: bool, smoothing_iterations: int,
+            fairing_scale_mm: float | None, target_vertices: int | None,
+            preserve_volume: bool, opts: dict) -> tuple[Surface, PrepareReport]:
+    """Smoothing, resampling and the volume correction of one repaired piece."""
+    metadata, actions, params = s.metadata, report.actions, report.parameters
+    reference = report.reference_volume_mm3
+    params["smooth"] = smooth
 
     if smooth:
         fixed = None if s.is_closed else s.connectivity.boundary_vertices
@@ -321,7 +328,7 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     if target_vertices is not None and int(target_vertices) != s.n_vertices:
         n0 = s.n_vertices
         s = resample(s, int(target_vertices))
-        v, f, more = _repair(np.array(s.vertices), np.array(s.faces), **opts)
+        v, f, more = repair_chain(np.array(s.vertices), np.array(s.faces), **opts)
         s = Surface(v, f, metadata=metadata)
         actions.append(f"resampled from {n0} to {s.n_vertices} vertices "
                        "(quadric decimation, short-edge collapses, edge flips, tangential "
