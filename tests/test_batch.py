@@ -11,6 +11,7 @@ workers started on loopback.
 from __future__ import annotations
 
 import filecmp
+import json
 import os
 import shutil
 import signal
@@ -29,7 +30,7 @@ from surfacekit.cohort.tables import covariate_matrix
 from surfacekit.io.tables import format_value
 
 N_VERTICES = 1500
-TABLES = ("cohort_summary.csv", "group_test.csv")
+TABLES = ("cohort_summary.csv", "group_test.csv", "group_test.json")
 RUN_OPTIONS = {"target_vertices": N_VERTICES, "n_permutations": 200, "n_eigenvalues": 30,
                "progress": False}
 SCALE = 1.1
@@ -150,15 +151,19 @@ def test_cache_key_and_formatting():
 
 
 def test_covariates_coded_for_the_group_test():
-    """Numbers kept, two-level text coded 0/1 (sorted), constant or incomplete columns dropped."""
+    """Numbers kept, two-level text coded 0/1 (sorted), constant or incomplete columns
+    dropped with the reason."""
     from surfacekit.cohort.manifest import ManifestEntry
 
     entries = [ManifestEntry("a", Path("a"), covariates={"age": "40", "sex": "M", "site": "x"}),
                ManifestEntry("b", Path("b"), covariates={"age": "50", "sex": "F", "site": "x"}),
                ManifestEntry("c", Path("c"), covariates={"age": "45", "sex": "M", "site": ""})]
-    matrix, used = covariate_matrix(entries)
+    matrix, used, dropped = covariate_matrix(entries)
     assert used == ["age", "sex"]
     np.testing.assert_array_equal(matrix, [[40, 1], [50, 0], [45, 1]])
+    assert dropped == [{"name": "site", "reason": "no value for 1 of the 3 subjects tested"}]
+    _, used, dropped = covariate_matrix(entries[:2])
+    assert used == ["age", "sex"] and dropped[0]["reason"] == "the same value for every subject tested"
 
 
 # ----------------------------------------------------------------- one cohort run
@@ -213,7 +218,8 @@ def test_cohort_rows_failures_and_reference_values(cohort):
     np.testing.assert_allclose(on_template["normal_displacement"],
                                per_subject["normal_displacement"], rtol=1e-6, atol=1e-6)  # float32
 
-    # group_test.csv: t of the group effect adjusted for age (sex is constant, dropped),
+    # group_test.csv: t of case minus control (control is first in the manifest) adjusted
+    # for age (sex is constant, dropped and recorded),
     # checked against an ordinary least-squares fit (textbook t = b / se(b), e.g.
     # Seber & Lee, Linear Regression Analysis, 2003) computed here with numpy.
     table = np.genfromtxt(out / "group_test.csv", delimiter=",", names=True)
@@ -222,13 +228,20 @@ def test_cohort_rows_failures_and_reference_values(cohort):
     order = np.r_[np.flatnonzero(ok & (groups == "control")), np.flatnonzero(ok & (groups == "case"))]
     y = fields["normal_displacement"][order]
     age = np.array([61, 49, 58, 66], dtype=float)        # copy, k1 | scaled, k2
-    x = np.column_stack([[1, 1, 0, 0], np.ones(4), age])
+    x = np.column_stack([[0, 0, 1, 1], np.ones(4), age])
     beta, *_ = np.linalg.lstsq(x, y, rcond=None)
     resid = y - x @ beta
     sigma2 = (resid ** 2).sum(axis=0) / (4 - 3)
     t = beta[0] / np.sqrt(sigma2 * np.linalg.inv(x.T @ x)[0, 0])
     finite = np.isfinite(t) & (np.abs(t) < 1e6)
-    np.testing.assert_allclose(table["t"][finite], t[finite], rtol=2e-5, atol=1e-5)
+    np.testing.assert_allclose(table["t_case_minus_control"][finite], t[finite], rtol=2e-5,
+                               atol=1e-5)
+    info = json.loads((out / "group_test.json").read_text())
+    assert info == {**info, "contrast": "case minus control", "reference_group": "control",
+                    "covariates_used": ["age"], "groups": {"control": 2, "case": 2}}
+    assert [d["name"] for d in info["covariates_dropped"]] == ["sex"]
+    assert json.loads((out / "run_summary.json").read_text())["group_test"] == info
+    assert "covariates used: age; not used: sex" in result.summary()
     assert np.all((table["p_fwer"] > 0) & (table["p_fwer"] <= 1))
 
 

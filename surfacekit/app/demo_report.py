@@ -11,7 +11,14 @@ from ..mesh.surface import Surface
 from . import demo_data
 from . import figures as rfig
 from .report import ReportPanel, write_report
-from .views import change_figures, change_panel, correspondence_panel, group_test_panel
+from .views import (
+    change_figures,
+    change_panel,
+    correspondence_panel,
+    group_test_panel,
+    map_trust,
+    trust_report_parts,
+)
 
 
 def _scalars(d: dict) -> dict:
@@ -19,22 +26,25 @@ def _scalars(d: dict) -> dict:
 
 
 class _GroupColumns:
-    """The columns of group_test.csv under the names of ``GroupTestResult``."""
+    """The columns of group_test.csv under the names of ``GroupTestResult``
+    (``t`` = the file's ``t_<second>_minus_<first>``)."""
 
-    def __init__(self, cols: dict):
-        self.t, self.p_fwer, self.q_fdr = cols["t"], cols.get("p_fwer"), cols.get("q_fdr")
+    def __init__(self, cols: dict, t_column: str):
+        self.t, self.p_fwer, self.q_fdr = cols[t_column], cols.get("p_fwer"), cols.get("q_fdr")
 
 
-def _region_rows(cols: dict, labels: np.ndarray, diff, groups: tuple[str, str]) -> list[dict]:
-    """Per template region: size, mean group difference, largest t and the FWER hits."""
-    t_shown = -cols["t"]  # second group minus first, as in the panel
-    p_fwer = cols.get("p_fwer")
+def _region_rows(cols: _GroupColumns, labels: np.ndarray, diff, groups: tuple[str, str]
+                 ) -> list[dict]:
+    """Per template region: size, mean difference, largest t (``groups[0] - groups[1]``, as in
+    group_test.csv and the panel) and the FWER hits."""
+    p_fwer = cols.p_fwer
     table = []
     for lab, name in demo_data.REGION_NAMES.items():
         m = labels == lab
         table.append({"region": name, "vertices": int(m.sum()),
-                      "mean difference (mm)": float(diff[m].mean()) if diff is not None else None,
-                      f"max t ({groups[1]} − {groups[0]})": float(t_shown[m].max()),
+                      f"mean difference ({groups[0]} − {groups[1]}, mm)":
+                          float(diff[m].mean()) if diff is not None else None,
+                      f"max t ({groups[0]} − {groups[1]})": float(cols.t[m].max()),
                       "min p (FWER)": float(p_fwer[m].min()) if p_fwer is not None else None,
                       "vertices with p_FWER < 0.05": int((p_fwer[m] < 0.05).sum())
                       if p_fwer is not None else None})
@@ -59,11 +69,23 @@ def cohort_panel(result_dir: Path, raw_template: Surface, raw_labels: np.ndarray
     cols = {k: np.array([float(r[k]) for r in rows]) for k in rows[0] if k != "vertex"}
     means = [k for k in cols if k.startswith("mean_")]
     labels = raw_labels[cKDTree(raw_template.vertices).query(template.vertices)[1]]
-    diff = cols[means[1]] - cols[means[0]] if len(means) == 2 else None
-    groups = tuple(m[len("mean_"):-len("_mm")] for m in means) if len(means) == 2 else ("A", "B")
-    panel = group_test_panel("cohort template", template, _GroupColumns(cols), diff, labels,
-                             demo_data.REGION_NAMES, groups=groups)
-    return panel, _region_rows(cols, labels, diff, groups)
+    first, second = (m[len("mean_"):-len("_mm")] for m in means)  # manifest order
+    diff = cols[means[1]] - cols[means[0]]
+    result = _GroupColumns(cols, f"t_{second}_minus_{first}")
+    panel = group_test_panel("cohort template", template, result, diff, labels,
+                             demo_data.REGION_NAMES, groups=(second, first))
+    return panel, _region_rows(result, labels, diff, (second, first))
+
+
+def _group_provenance(cohort) -> dict:
+    """The cohort group test's contrast and covariates (used, and dropped with the reason)."""
+    info = getattr(cohort, "group_test", None) or {}
+    if not info:
+        return {}
+    dropped = "; ".join(f"{d['name']}: {d['reason']}" for d in info["covariates_dropped"])
+    return {"group test": {"t column": info["t_column"], "contrast": info["contrast"],
+                           "covariates used": ", ".join(info["covariates_used"]) or "none",
+                           "covariates dropped": dropped or "none"}}
 
 
 def _headline(result, truth: dict, mq: dict, cohort, cohort_table: list[dict]) -> dict:
@@ -104,9 +126,12 @@ def write_demo_report(out: Path, *, base, follow, follow_mesh, result, corr_mesh
                      demo_data.REGION_NAMES),
         correspondence_panel("baseline", base, "follow-up mesh (scanner B)", follow_mesh, corr_mesh),
     ]
+    trust_summary, trust_table = trust_report_parts(map_trust(corr_mesh, base, follow_mesh))
+    summary.update({f"{k} (baseline → follow-up mesh)": v for k, v in trust_summary.items()})
     tables = {"Regional change (baseline regions from the template)": regional,
               "Map quality against the known ground truth (baseline → follow-up mesh)":
                   [_scalars(map_quality)],
+              **{f"{k} (baseline → follow-up mesh)": v for k, v in trust_table.items()},
               "Surfaces": [{"surface": k, **_scalars(v)} for k, v in quality.items()]}
     if panel is not None:
         panels.append(panel)
@@ -118,7 +143,8 @@ def write_demo_report(out: Path, *, base, follow, follow_mesh, result, corr_mesh
                  subtitle="Invented, synthetic data. " + " ".join(
                      scenario.split("\n\n")[1:2]).replace("\n", " "),
                  panels=panels, summary=summary, tables=tables, figures=figures,
-                 figure_dir=out / "figures", provenance=provenance, warnings=result.warnings)
+                 figure_dir=out / "figures", warnings=result.warnings,
+                 provenance={**provenance, **_group_provenance(cohort)})
     for fig in figures.values():
         rfig.close(fig)
     return summary

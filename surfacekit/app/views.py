@@ -156,15 +156,17 @@ def group_test_panel(template_name: str, template: Surface, result, mean_differe
                      ) -> ReportPanel:
     """Vertex-wise group statistics on the template: t, corrected p-values, mean difference.
 
-    ``result`` follows :func:`surfacekit.vertexwise_group_test` (t > 0 where the first
-    group is larger); the panel shows ``groups[1] - groups[0]``, so the second group's
-    growth is red.  ``mean_difference`` must already be ``mean(groups[1]) - mean(groups[0])``.
+    ``result`` follows :func:`surfacekit.vertexwise_group_test`: its ``t`` is
+    ``groups[0] - groups[1]`` (group_a minus group_b), shown as it is, so red is where
+    ``groups[0]`` lies further outward.  ``mean_difference`` must be
+    ``mean(groups[0]) - mean(groups[1])``.  (``group_test.csv`` of a cohort holds
+    ``t_<second>_minus_<first>``: pass ``groups=(second, first)``.)
     """
-    contrast = f"{groups[1]} − {groups[0]}"
-    layers = [ReportLayer(f"t statistic ({contrast})", [-np.asarray(result.t, dtype=float)],
+    contrast = f"{groups[0]} − {groups[1]}"
+    layers = [ReportLayer(f"t statistic ({contrast})", [np.asarray(result.t, dtype=float)],
                           kind="diverging",
                           description=f"Vertex-wise two-sample t statistic of {contrast}: red "
-                                      f"where {groups[1]} lies further outward.")]
+                                      f"where {groups[0]} lies further outward.")]
     if mean_difference is not None:
         layers.append(ReportLayer(f"mean difference ({contrast})",
                                   [np.asarray(mean_difference, dtype=float)], kind="diverging",

@@ -65,6 +65,8 @@ class CohortResult:
         ``"cpu"`` is their CPU time (s), the time on idle cores when the machine is shared
     peak_rss_mb : peak resident memory per worker process (MiB), keyed ``host:pid``
     tables : paths of the cohort tables written
+    group_test : what the group test compared (``group_test.json``): groups, contrast,
+        ``covariates_used`` and ``covariates_dropped`` (name and reason); empty without a test
     """
 
     output_dir: Path
@@ -77,6 +79,7 @@ class CohortResult:
     stage_seconds: dict = field(default_factory=dict)
     peak_rss_mb: dict = field(default_factory=dict)
     tables: dict = field(default_factory=dict)
+    group_test: dict = field(default_factory=dict)
 
     @property
     def n_subjects(self) -> int:
@@ -104,6 +107,7 @@ class CohortResult:
         if self.peak_rss_mb:
             lines.append(f"peak memory per worker: {max(self.peak_rss_mb.values()):.0f} MiB "
                          f"(max over {len(self.peak_rss_mb)} worker processes)")
+        lines += covariate_lines(self.group_test)
         for subject, error in self.failed[:20]:
             lines.append(f"failed {subject}: {error}")
         if self.n_failed > 20:
@@ -220,9 +224,20 @@ def _collect(results, rows: list, total: int, n_done: int, progress: bool) -> tu
     return stage_seconds, peak
 
 
+def covariate_lines(info: dict) -> list[str]:
+    """The group test's contrast and covariates in one line (empty without a test)."""
+    if not info:
+        return []
+    used = ", ".join(info["covariates_used"]) or "none"
+    dropped = ", ".join(d["name"] for d in info["covariates_dropped"])
+    return [f"group test: {info['t_column']} ({info['contrast']}); covariates used: {used}"
+            + (f"; not used: {dropped} (reasons in group_test.json)" if dropped else "")]
+
+
 def _write_tables(out: Path, man: Manifest, rows: list[dict], n_template: int, options: dict,
-                  *, n_permutations: int) -> dict:
-    """The cohort tables, in manifest order; a stale group test of an earlier run is removed."""
+                  *, n_permutations: int) -> tuple[dict, dict]:
+    """The cohort tables, in manifest order, and the group test's info; a stale group test
+    of an earlier run is removed."""
     subject_dirs = [out / "subjects" / e.subject for e in man.subjects]
     tables = {"summary": write_summary(out / "cohort_summary.csv", man, rows)}
     tables["fields"] = write_fields_matrix(out / "cohort_fields.npz", man, rows, subject_dirs,
@@ -235,10 +250,11 @@ def _write_tables(out: Path, man: Manifest, rows: list[dict], n_template: int, o
         logger.warning("cohort: no group test: %s", exc)
         written = None
     if written is not None:
-        tables["group_test"] = written
-    elif group_file.exists():  # a stale test from an earlier run would mislead
-        group_file.unlink()
-    return tables
+        tables["group_test"], info = written
+        return tables, info
+    for stale in (group_file, group_file.with_suffix(".json")):  # an earlier run's test would mislead
+        stale.unlink(missing_ok=True)
+    return tables, {}
 
 
 def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
@@ -307,21 +323,21 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
                         max_tasks_per_worker=max_tasks_per_worker)
     stage_seconds, peak = _collect(results, rows, len(man.subjects),
                                    len(man.subjects) - len(tasks), progress)
-    tables = _write_tables(out, man, rows, n_template, options,
+    tables, group_info = _write_tables(out, man, rows, n_template, options,
                            n_permutations=int(n_permutations))
     result = CohortResult(
         output_dir=out, engine=engine_name(int(workers), scheduler), rows=rows,
         n_computed=len(tasks), n_cached=len(man.subjects) - len(tasks),
         n_failed=sum(r["status"] != "ok" for r in rows),
         wall_seconds=time.perf_counter() - start, stage_seconds=stage_seconds,
-        peak_rss_mb=peak, tables=tables)
+        peak_rss_mb=peak, tables=tables, group_test=group_info)
     write_json(out / "run_summary.json", {
         "engine": result.engine, "n_subjects": result.n_subjects,
         "n_computed": result.n_computed, "n_cached": result.n_cached,
         "n_failed": result.n_failed, "wall_seconds": result.wall_seconds,
         "subjects_per_minute": result.subjects_per_minute, "stage_seconds": stage_seconds,
         "peak_rss_mb": peak, "version": __version__, "options": options,
-        "failed": result.failed})
+        "failed": result.failed, "group_test": group_info})
     if result.n_subjects and result.n_failed == result.n_subjects:
         raise CohortFailedError(result)
     return result

@@ -6,10 +6,14 @@
 ``cohort_fields.npz``   per-template-vertex matrices (subjects x template vertices),
                         NaN rows for failed subjects, streamed row by row to disk.
 ``group_test.csv``      vertex-wise two-group test of the normal displacement
-                        (seeded permutations) when exactly two groups exist.
+                        (seeded permutations) when exactly two groups exist; the first
+                        group in manifest order is the reference: column
+                        ``t_<second>_minus_<first>``.
+``group_test.json``     its groups, contrast and the covariates used and dropped (with why).
 """
 from __future__ import annotations
 
+import warnings
 import zipfile
 from pathlib import Path
 
@@ -18,7 +22,7 @@ import numpy as np
 from ..analysis.stats import vertexwise_group_test
 from ..io.files import atomic_path
 from ..io.npz import npz_member
-from ..io.tables import write_csv
+from ..io.tables import write_csv, write_json
 from .manifest import Manifest
 from .subject import CHANGE_COLUMNS
 
@@ -27,6 +31,7 @@ SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "vo
                   "match_turn_ambiguous")
 RESULT_COLUMNS = ("subject", "group", "label", "status", "error", *SCALAR_COLUMNS)
 VERTEX_FIELDS = ("normal_displacement", "log_area_ratio")
+SAME = "the same value for every subject tested"
 
 
 def check_covariate_names(manifest: Manifest) -> None:
@@ -96,62 +101,97 @@ def two_groups(manifest: Manifest, rows: list[dict]) -> tuple[str, str] | None:
     return a, b
 
 
-def covariate_matrix(entries) -> tuple[np.ndarray | None, list[str]]:
+def covariate_matrix(entries) -> tuple[np.ndarray | None, list[str], list[dict]]:
     """Numeric covariates of the given manifest entries (group A rows, then group B).
 
     A column is used when every entry has a value and the values vary: numbers
     as they are, two-level text (e.g. sex F/M) coded 0/1 in sorted order.
+    Returns ``(matrix or None, names used, dropped)`` with ``dropped`` a list of
+    ``{"name", "reason"}`` for every other column.
     """
     names = list(dict.fromkeys(c for e in entries for c in e.covariates))
-    cols, used = [], []
+    cols, used, dropped = [], [], []
     for name in names:
         values = [e.covariates.get(name, "") for e in entries]
-        if any(v == "" for v in values):
+        missing = sum(v == "" for v in values)
+        if missing:
+            dropped.append({"name": name, "reason": f"no value for {missing} of the "
+                                                    f"{len(values)} subjects tested"})
             continue
         try:
             col = np.array([float(v) for v in values])
         except ValueError:
             levels = sorted(set(values))
             if len(levels) != 2:
+                dropped.append({"name": name, "reason": SAME if len(levels) == 1 else
+                                f"text with {len(levels)} different values (numbers or two "
+                                "levels needed)"})
                 continue
             col = np.array([float(levels.index(v)) for v in values])
-        if np.all(np.isfinite(col)) and np.ptp(col) > 0:
-            cols.append(col)
-            used.append(name)
-    return (np.column_stack(cols) if cols else None), used
+        if not np.all(np.isfinite(col)) or np.ptp(col) == 0:
+            dropped.append({"name": name, "reason": SAME if np.all(np.isfinite(col))
+                            else "not a finite number everywhere"})
+            continue
+        cols.append(col)
+        used.append(name)
+    return (np.column_stack(cols) if cols else None), used, dropped
+
+
+def _fit(a, b, entries, n_permutations: int, seed: int):
+    """The group test of ``a - b`` with the usable covariates; without them if they make
+    the model unfittable.  Returns (result, covariates used, covariates dropped)."""
+    cov, used, dropped = covariate_matrix(entries)
+    try:
+        res = vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed,
+                                    covariates=cov)
+    except ValueError as exc:
+        if cov is None:
+            raise
+        res = vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed)
+        dropped += [{"name": n, "reason": f"the model with the covariates could not be fitted: "
+                                          f"{exc}"} for n in used]
+        used = []
+    return res, used, dropped
 
 
 def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
-                     *, n_permutations: int, seed: int) -> Path | None:
-    """``group_test.csv``: per template vertex, group means, t, p-values and FDR q-values.
+                     *, n_permutations: int, seed: int) -> tuple[Path, dict] | None:
+    """``group_test.csv`` (per template vertex: group means, t, p-values, FDR q-values) and
+    ``group_test.json`` beside it (groups, contrast, covariates used and dropped).
 
     Runs :func:`~surfacekit.analysis.stats.vertexwise_group_test` (permutation max-T, Nichols &
-    Holmes 2002; FDR, Benjamini & Hochberg 1995) on the normal displacement (mm),
-    adjusted for the manifest covariates usable as numbers (see
-    :func:`covariate_matrix`); if they make the design rank deficient the test
-    runs without them.  Returns None (and writes nothing) without exactly two groups.
+    Holmes 2002; FDR, Benjamini & Hochberg 1995) on the normal displacement (mm, + outward),
+    adjusted for the manifest covariates usable as numbers (see :func:`covariate_matrix`);
+    if they make the design rank deficient the test runs without them and says so.
+    Sign convention: the first group in manifest order is the reference, the t column
+    is ``t_<second>_minus_<first>`` (t > 0 where the second group lies further outward).
+    Returns ``(csv path, info)``, or None (and writes nothing) without exactly two groups.
     """
     pair = two_groups(manifest, rows)
     if pair is None:
         return None
     with np.load(fields_file, allow_pickle=False) as data:
         nd, ok, groups = data["normal_displacement"], data["ok"], data["groups"]
-    in_a, in_b = ok & (groups == pair[0]), ok & (groups == pair[1])
-    a, b = nd[in_a], nd[in_b]
-    entries = ([e for e, m in zip(manifest.subjects, in_a) if m]
-               + [e for e, m in zip(manifest.subjects, in_b) if m])
-    cov, _used = covariate_matrix(entries)
-    try:
-        res = vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed,
-                                       covariates=cov)
-    except ValueError:
-        if cov is None:
-            raise
-        res = vertexwise_group_test(a, b, n_permutations=n_permutations, seed=seed)
-    columns = [a.mean(axis=0), b.mean(axis=0)] + [
+    ref, other = pair
+    in_ref, in_other = ok & (groups == ref), ok & (groups == other)
+    entries = ([e for e, m in zip(manifest.subjects, in_other) if m]
+               + [e for e, m in zip(manifest.subjects, in_ref) if m])
+    res, used, dropped = _fit(nd[in_other], nd[in_ref], entries, n_permutations, seed)
+    t_name = f"t_{other}_minus_{ref}"
+    columns = [nd[in_ref].mean(axis=0), nd[in_other].mean(axis=0)] + [
         np.asarray(getattr(res, name), dtype=np.float64)
         for name in ("t", "p_uncorrected", "p_fwer", "q_fdr")]
-    header = ["vertex", f"mean_{pair[0]}_mm", f"mean_{pair[1]}_mm", "t", "p_uncorrected",
+    header = ["vertex", f"mean_{ref}_mm", f"mean_{other}_mm", t_name, "p_uncorrected",
               "p_fwer", "q_fdr"]
     table = [dict(zip(header, (i, *vals))) for i, vals in enumerate(zip(*columns))]
-    return write_csv(path, table, columns=header)
+    info = {"field": "normal_displacement (mm, + outward)", "reference_group": ref,
+            "groups": {ref: int(in_ref.sum()), other: int(in_other.sum())},
+            "contrast": f"{other} minus {ref}", "t_column": t_name,
+            "covariates_used": used, "covariates_dropped": dropped,
+            "n_permutations": int(n_permutations), "seed": int(seed),
+            "method": res.info["method"]}
+    for d in dropped:  # the command line shows each as one warning line
+        warnings.warn(f"covariate {d['name']!r} not used in the group test: {d['reason']}",
+                      UserWarning, stacklevel=2)
+    write_json(Path(path).with_suffix(".json"), info)
+    return write_csv(path, table, columns=header), info
