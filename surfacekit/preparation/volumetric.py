@@ -17,7 +17,9 @@ lines: for a closed, consistently oriented piece the winding number at a point i
 the signed number of crossings of the ray from the point towards +z (+1 where the
 face normal points up, -1 down), so one sweep of vertical lines per grid column,
 vectorised over (triangle, covered column) pairs, gives it for every cell at a
-cost proportional to the projected area of the mesh in cells.  A cell is inside
+cost proportional to the projected area of the mesh in cells (plus one pass over
+the grid: an 8-million-cell grid around a 30k-vertex organ takes about a second).
+A cell is inside
 when the winding number of the closed orientable pieces is >= 0.5, so overlapping
 closed pieces give their union.  Pieces whose orientation cannot be made
 consistent (non-orientable, or open) use ray parity with voting (Nooruddin &
