@@ -203,9 +203,9 @@ def quality_report(surface: Surface) -> QualityReport:
 
     warnings: list[str] = []
     if n_parts > 1:
+        note = "; pieces touching only at a vertex count as separate" if n_nm_vertices else ""
         warnings.append(f"{_plural(n_parts - 1, 'extra component')} besides the largest "
-                        f"({_plural(extra, 'vertex', 'vertices')}; pieces touching only at a "
-                        "vertex count as separate components)")
+                        f"({_plural(extra, 'vertex', 'vertices')}{note})")
     if loops:
         warnings.append(f"{_plural(len(loops), 'hole')} (boundary loops with "
                         f"{_plural(len(s.boundary_edges), 'edge')}); the surface is not watertight")
