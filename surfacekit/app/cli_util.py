@@ -56,10 +56,14 @@ def input_record(path: Path, surface=None) -> dict:
 
 
 def surface_facts(s) -> dict:
-    """Basic geometric facts of a surface (mm, mm², ml)."""
+    """Basic geometric facts of a surface (mm, mm², ml); parts counted as a user sees them
+    (pieces touching only at a vertex are separate parts)."""
+    from ..preparation.mesh_quality import part_labels
+
+    parts = part_labels(s.faces, s.n_vertices)
     return {"vertices": s.n_vertices, "faces": s.n_faces, "area_mm2": float(s.area),
             "volume_ml": float(s.volume) / 1000.0, "closed": bool(s.is_closed),
-            "edge_manifold": bool(s.is_edge_manifold), "components": int(s.n_components),
+            "edge_manifold": bool(s.is_edge_manifold), "components": int(parts.max()) + 1 if len(parts) else 0,
             "genus": int(s.genus) if s.is_closed and s.is_edge_manifold else None,
             "mean_edge_mm": float(s.mean_edge_length)}
 
