@@ -17,10 +17,8 @@ from ..io.tables import write_json
 from .batch_commands import COHORT, DEMO
 from .cli_util import DEMO_DATA as D
 from .cli_util import (
-    MESH_SUFFIXES,
     existing,
     input_record,
-    is_volume,
     landmark_pairs,
     load_surface,
     region_names_for,
@@ -29,6 +27,7 @@ from .cli_util import (
     without_timings,
 )
 from .context import Command, Context, InputError
+from .prepare_command import prepare_args, run_prepare
 from .unit_options import add_units_option, say_warnings, units_for
 
 
@@ -57,49 +56,6 @@ def _inspect(ctx: Context) -> dict:
         ctx.say(f"surfacekit: quality warning: {w}")
     say_warnings(ctx, plausibility)
     return summary
-
-
-# ---------------------------------------------------------------- prepare
-def _prepare_args(p):
-    p.add_argument("input", help="label volume (.nii/.nii.gz) or mesh")
-    p.add_argument("-o", "--output", required=True,
-                   help="output mesh (.ply .obj .stl .off .gii .vtk .npz)")
-    p.add_argument("--label", type=int, default=1, help="label to mesh in a volume (default 1)")
-    p.add_argument("--target-vertices", type=int, default=None,
-                   help="resample to about this many vertices (default: keep)")
-    p.add_argument("--no-smooth", action="store_true", help="never smooth")
-    add_units_option(p)
-
-
-def _prepare(ctx: Context) -> dict:
-    from ..analysis.plausibility import size_warnings
-    from ..io import save
-    from ..preparation import from_segmentation, prepare
-
-    a = ctx.args
-    if a.target_vertices is not None and a.target_vertices < 100:
-        raise InputError(f"--target-vertices must be at least 100, got {a.target_vertices}")
-    target = ctx.outputs.claim(a.output, suffixes=MESH_SUFFIXES)
-    src = existing(a.input)
-    units = units_for(a.units, ["input"])[0]
-    if is_volume(src) and units != "mm":
-        raise InputError("--units applies to mesh inputs; a label volume is placed in mm by its "
-                         "own voxel size and orientation")
-    with ctx.progress(2, "prepare") as bar:
-        if is_volume(src):
-            surface = from_segmentation(src, a.label)
-        else:
-            surface = load_surface(a.input, units=units)
-        bar.update()
-        prepared, report = prepare(surface, target_vertices=a.target_vertices,
-                                   smooth=False if a.no_smooth else None)
-        bar.update()
-    save(prepared, target)
-    warnings = size_warnings(surface, src.name)
-    say_warnings(ctx, warnings)
-    return {"input": src.name, "output": str(a.output), "units": {"input": units, "output": "mm"},
-            "before": surface_facts(surface), "after": surface_facts(prepared),
-            "steps": report.to_dict(), "warnings": warnings}
 
 
 # ---------------------------------------------------------------- describe
@@ -364,7 +320,7 @@ COMMANDS = [
     Command("prepare", "clean mesh from a segmentation or mesh",
             "Repair, smooth and resample a mesh, or mesh one label of a NIfTI segmentation.",
             f"surfacekit prepare {D}/kidney_followup_seg.nii.gz --label 1 --target-vertices 4000 "
-            "-o followup_clean.ply", _prepare_args, _prepare),
+            "-o followup_clean.ply", prepare_args, run_prepare),
     Command("describe", "intrinsic descriptors",
             "Laplace–Beltrami spectrum, heat and wave kernel signatures, curvature (.npz).",
             f"surfacekit describe {D}/kidney_baseline.ply -o baseline_descriptors.npz",

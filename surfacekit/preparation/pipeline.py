@@ -225,7 +225,9 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         of the bounding-box diagonal
     keep : which part to return when the surface holds several: ``"largest"`` (by
         area; by inside volume when rebuilt), ``"all"`` (each part prepared on its own,
-        a list is returned), or an int index into the parts ordered largest first.
+        a list is returned), an int index into the parts ordered largest first, or
+        ``"volume:<ml>"``: the closed part whose enclosed volume is nearest that many
+        millilitres (1 ml = 1000 mm³).
         Parts are pieces joined through edges (pieces touching at a vertex are separate).
     volumetric : None (default) rebuilds through a volume only when needed; True always;
         False never (a non-orientable surface then raises as before)
@@ -255,9 +257,11 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         raise ValueError(f"target_vertices must be an integer >= 4, got {target_vertices!r}")
     if smoothing_iterations < 0 or max_hole_edges < 0:
         raise ValueError("smoothing_iterations and max_hole_edges must be >= 0")
-    if keep not in ("largest", "all") and (isinstance(keep, (bool, str, float))
-                                           or not float(keep).is_integer()):
-        raise ValueError(f"keep must be 'largest', 'all' or a part index, got {keep!r}")
+    volume_ml = _volume_wanted(keep)
+    if keep not in ("largest", "all") and volume_ml is None and (
+            isinstance(keep, (bool, str, float)) or not float(keep).is_integer()):
+        raise ValueError(f"keep must be 'largest', 'all', 'volume:<ml>' or a part index, "
+                         f"got {keep!r}")
     if voxel_mm is not None and not (np.isfinite(voxel_mm) and voxel_mm > 0):
         raise ValueError(f"voxel_mm must be a positive number of mm, got {voxel_mm!r}")
     params = {"target_vertices": target_vertices, "smooth": smooth,
@@ -268,6 +272,8 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
     opts = {"keep_largest": keep_largest, "max_hole_edges": max_hole_edges,
             "merge_tolerance": merge_tolerance}
     pieces, route = prepare_pieces(surface, keep, keep_largest, volumetric, voxel_mm, opts)
+    if volume_ml is not None:
+        keep = _nearest_volume(pieces, volume_ml)
     chosen = select_parts(pieces, keep if keep in ("largest", "all") else int(keep))
     out = []
     for k, (v, f, actions, reference, spacing) in enumerate(chosen):
@@ -287,6 +293,28 @@ def prepare(surface: Surface, *, target_vertices: int | None = None, smooth: boo
         out.append(_finish(s, report, do_smooth, smoothing_iterations, fairing_scale_mm,
                            target_vertices, preserve_volume, opts))
     return out if keep == "all" else out[0]
+
+
+def _volume_wanted(keep) -> float | None:
+    """The millilitres of ``keep="volume:<ml>"``, None for any other ``keep``."""
+    if not (isinstance(keep, str) and keep.startswith("volume:")):
+        return None
+    try:
+        ml = float(keep[len("volume:"):])
+    except ValueError:
+        ml = float("nan")
+    if not (np.isfinite(ml) and ml > 0):
+        raise ValueError(f"keep='volume:<ml>' needs a positive number of millilitres, got {keep!r}")
+    return ml
+
+
+def _nearest_volume(pieces: list, ml: float) -> int:
+    """Index of the closed piece whose enclosed volume is nearest ``ml`` millilitres."""
+    volumes = [p[3] for p in pieces]
+    if not any(volumes):
+        raise SurfaceError("keep='volume:...' needs closed parts, but no part encloses a volume")
+    gaps = [abs(v / 1000.0 - ml) if v else np.inf for v in volumes]
+    return int(np.argmin(gaps))
 
 
 def _finish(s: Surface, report: PrepareReport, smooth: bool, smoothing_iterations: int,
