@@ -8,6 +8,7 @@ from pathlib import Path
 from .cli_util import DEMO_DATA as D
 from .cli_util import existing
 from .context import EXIT_SOME_FAILED, Command, Context, InputError, emit, writable_folder
+from .unit_options import units_for
 
 
 # ---------------------------------------------------------------- cohort
@@ -23,6 +24,9 @@ def _cohort_args(p):
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on a Dask cluster, e.g. tcp://10.0.0.5:8786 (needs the 'cluster' extra; "
                         "workers must see the inputs and the output folder at the same paths)")
+    p.add_argument("--units", default="mm", metavar="UNITS",
+                   help="length unit of mesh files whose manifest 'units' cell is blank or absent: "
+                        "mm (default), cm, m, or the size of one file unit in mm")
 
 
 def check_manifest(path: Path) -> None:
@@ -48,6 +52,7 @@ def _cohort(ctx: Context) -> dict:
         raise InputError(f"--workers must be at least 1, got {a.workers}")
     manifest = existing(a.manifest, "manifest")
     check_manifest(manifest)
+    units = units_for(a.units, ["manifest meshes"])[0]
     if a.template:
         existing(a.template, "template")
     # The cohort folder is written in place, subject by subject (each file atomically,
@@ -61,7 +66,7 @@ def _cohort(ctx: Context) -> dict:
         result = run_cohort(manifest, out, a.template, workers=a.workers, scheduler=a.scheduler,
                             target_vertices=a.target_vertices, n_permutations=a.permutations,
                             seed=a.seed, progress=not ctx.quiet and sys.stderr.isatty(),
-                            force=a.force)
+                            force=a.force, units=units)
     except CohortFailedError as exc:  # exit 2; the errors stay in cohort_summary.csv
         raise InputError(str(exc)) from None
     ctx.say(result.summary())

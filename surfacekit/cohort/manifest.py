@@ -6,7 +6,10 @@ and copied to the cohort table.  Exactly one row has ``role`` ``template``
 (unless a template is given separately); every other row is a ``subject``.
 ``path`` is relative to the manifest's own folder, or absolute: a mesh
 (.ply .obj .stl .off .gii .vtk) or a label volume (.nii, .nii.gz) whose
-``label`` column gives the integer label.
+``label`` column gives the integer label.  An optional ``units`` column names
+the length unit of a mesh file (mm, cm, m or the size of one file unit in mm, as
+``load(path, units=...)`` takes; blank means the run's default, mm unless given);
+it is not a covariate.
 """
 from __future__ import annotations
 
@@ -17,7 +20,11 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..io.units import parse_units
+from ..mesh.surface import SurfaceError
+
 REQUIRED_COLUMNS = ("subject", "path", "label", "group", "role", "age", "sex")
+UNITS_COLUMN = "units"   # optional; never a covariate
 VOLUME_SUFFIXES = (".nii", ".nii.gz")
 # Bump when the per-subject computation changes meaning, so old caches are not reused.
 PIPELINE_VERSION = "cohort-2"   # 2: area-weighted change metrics, one eigenbasis per surface
@@ -34,6 +41,7 @@ class ManifestEntry:
     group: str = ""
     role: str = "subject"
     covariates: dict = field(default_factory=dict)   # age, sex and any extra columns (strings)
+    units: str = "mm"      # length unit of a mesh file (name from parse_units)
 
     @property
     def is_volume(self) -> bool:
@@ -68,7 +76,15 @@ def _parse_label(text: str, line: int) -> int | None:
     return int(value)
 
 
-def read_manifest(path, *, template=None) -> Manifest:
+def _parse_units(text: str, line: int | None) -> str:
+    try:
+        return parse_units(text)[0]
+    except SurfaceError as exc:
+        where = f"manifest line {line}: " if line else ""
+        raise ValueError(f"{where}units {text!r}: {exc}") from None
+
+
+def read_manifest(path, *, template=None, units="mm") -> Manifest:
     """Parse and check a cohort manifest CSV.
 
     Parameters
@@ -76,6 +92,8 @@ def read_manifest(path, *, template=None) -> Manifest:
     path : path of the CSV file
     template : optional path of a template surface; overrides (and makes
         optional) the manifest's ``role=template`` row.
+    units : unit of the mesh files whose ``units`` cell is blank or absent (mm, cm, m or
+        mm per file unit)
 
     Raises
     ------
@@ -96,7 +114,8 @@ def read_manifest(path, *, template=None) -> Manifest:
             raise ValueError(f"manifest {path.name} lacks column(s) {', '.join(missing)} "
                              f"(header must be {','.join(REQUIRED_COLUMNS)})")
         reader.fieldnames = header
-        extra = [h for h in header if h not in REQUIRED_COLUMNS]
+        default_units = _parse_units(str(units), None)
+        extra = [h for h in header if h not in (*REQUIRED_COLUMNS, UNITS_COLUMN)]
         covariate_names = ("age", "sex", *extra)
         subjects: list[ManifestEntry] = []
         templates: list[ManifestEntry] = []
@@ -117,7 +136,8 @@ def read_manifest(path, *, template=None) -> Manifest:
             entry = ManifestEntry(
                 subject=sid, path=p if p.is_absolute() else base / p,
                 label=_parse_label(row["label"], line), group=row["group"], role=role,
-                covariates={c: row.get(c, "") for c in covariate_names})
+                covariates={c: row.get(c, "") for c in covariate_names},
+                units=_parse_units(row.get(UNITS_COLUMN) or default_units, line))
             (templates if role == "template" else subjects).append(entry)
     seen: set[str] = set()
     for e in subjects:
@@ -128,9 +148,10 @@ def read_manifest(path, *, template=None) -> Manifest:
         tpath = Path(template)
         if not tpath.is_file():
             raise ValueError(f"template not found: {tpath}")
-        label = templates[0].label if templates and templates[0].path == tpath.resolve() else None
-        chosen = ManifestEntry(subject="template", path=tpath.resolve(), label=label,
-                               role="template")
+        same = templates and templates[0].path == tpath.resolve()
+        chosen = ManifestEntry(subject="template", path=tpath.resolve(),
+                               label=templates[0].label if same else None, role="template",
+                               units=templates[0].units if same else default_units)
     elif len(templates) == 1:
         chosen = templates[0]
     elif not templates:

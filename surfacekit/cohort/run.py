@@ -157,7 +157,8 @@ def prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Pa
         raise ValueError(f"template not found: {entry.path}")
     # only the resampling shapes the stored template; every other option enters the subject keys
     key = cache_key(input_digest=file_digest(entry.path), label=entry.label, template_key="",
-                    options={"target_vertices": options["target_vertices"]},
+                    options={"target_vertices": options["target_vertices"],
+                             "units": entry.units},
                     version=__version__)
     tdir = out / "template"
     tfile = tdir / "template.npz"
@@ -166,7 +167,8 @@ def prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Pa
         for stale in tdir.glob(f"*{MARKER_SUFFIX}"):
             stale.unlink()
         with threadpool_limits(limits=1):  # same arithmetic as in the pinned workers
-            template = prepare_surface(load_input_surface(entry.path, entry.label), options)
+            template = prepare_surface(load_input_surface(entry.path, entry.label, entry.units),
+                                       options)
         save_fields(tfile, vertices=template.vertices, faces=template.faces)
         save(template, tdir / "template.ply")
         (tdir / f"{key}{MARKER_SUFFIX}").write_text(key + "\n")
@@ -184,7 +186,8 @@ def _plan(man: Manifest, out: Path, template: tuple[Path, str], options: dict,
     for i, entry in enumerate(man.subjects):
         sdir = out / "subjects" / entry.subject
         key = cache_key(input_digest=_digest_or_marker(entry.path), label=entry.label,
-                        template_key=tkey, options=options, version=__version__)
+                        template_key=tkey, options={**options, "units": entry.units},
+                        version=__version__)
         stored = None if force else read_finished(sdir, key)
         if stored is not None:
             rows[i] = {"index": i, "subject": entry.subject, "key": key, "cached": True,
@@ -193,7 +196,8 @@ def _plan(man: Manifest, out: Path, template: tuple[Path, str], options: dict,
             tasks.append(SubjectTask(index=i, subject=entry.subject, path=str(entry.path),
                                      label=entry.label, key=key, subject_dir=str(sdir),
                                      template_file=str(tfile), template_key=tkey,
-                                     options=options, match_options=match_options))
+                                     options=options, match_options=match_options,
+                                     units=entry.units))
     return rows, tasks
 
 
@@ -261,7 +265,8 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
                scheduler: str | None = None, target_vertices: int | None = 5000,
                n_eigenvalues: int = 50, n_permutations: int = 5000, seed: int = 0,
                match_options: MatchOptions | None = None, progress: bool = True,
-               force: bool = False, max_tasks_per_worker: int | None = None) -> CohortResult:
+               force: bool = False, max_tasks_per_worker: int | None = None,
+               units: str = "mm") -> CohortResult:
     """Run the per-subject pipeline over a cohort manifest and write the cohort tables.
 
     Parameters
@@ -283,6 +288,8 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     progress : show a progress bar over subjects (stderr)
     force : recompute every subject even when a finished result exists
     max_tasks_per_worker : restart a local worker process after this many subjects
+    units : length unit of mesh files whose manifest ``units`` cell is blank or absent
+        (mm, cm, m, or mm per file unit; see :func:`surfacekit.io.units.parse_units`)
 
     Returns
     -------
@@ -312,7 +319,7 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     if int(workers) > 1 and not scheduler:
         check_main_guard(f"run_cohort(workers={int(workers)})")
     start = time.perf_counter()
-    man: Manifest = read_manifest(manifest, template=template)
+    man: Manifest = read_manifest(manifest, template=template, units=units)
     check_covariate_names(man)
     out = Path(output_dir)
     (out / "subjects").mkdir(parents=True, exist_ok=True)
@@ -337,6 +344,8 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         "n_failed": result.n_failed, "wall_seconds": result.wall_seconds,
         "subjects_per_minute": result.subjects_per_minute, "stage_seconds": stage_seconds,
         "peak_rss_mb": peak, "version": __version__, "options": options,
+        "units": {"template": man.template.units,
+                  "subjects": {e.subject: e.units for e in man.subjects}},
         "failed": result.failed, "group_test": group_info})
     if result.n_subjects and result.n_failed == result.n_subjects:
         raise CohortFailedError(result)

@@ -35,10 +35,12 @@ from ..preparation import from_segmentation, prepare
 from .manifest import VOLUME_SUFFIXES
 
 STAGES = ("load", "prepare", "descriptors", "match", "change", "write")
-# change metrics of the cohort table, taken from the change report's own (area-weighted)
-# definitions, so a subject's row equals its change summary
-CHANGE_COLUMNS = ("mean_abs_normal_displacement_mm", "max_abs_normal_displacement_mm",
-                  "mean_log_area_ratio")
+# change metrics of the cohort table (column -> change-summary name), taken from the change
+# report's own (area-weighted) definitions, so a subject's row equals its change summary; the
+# comparison runs template -> subject, so the signed ones name the subject and the template
+CHANGE_COLUMNS = {"mean_abs_normal_displacement_mm": "mean_abs_normal_displacement_mm",
+                  "max_abs_normal_displacement_mm": "max_abs_normal_displacement_mm",
+                  "mean_log_area_ratio_subject_over_template": "mean_log_area_ratio_followup_over_baseline"}
 MARKER_SUFFIX = ".done"
 
 
@@ -56,18 +58,23 @@ class SubjectTask:
     template_key: str
     options: dict           # target_vertices, n_eigenvalues, seed, match (as in the cache key)
     match_options: MatchOptions
+    units: str = "mm"       # length unit of a mesh input (enters the cache key)
 
 
-def load_input_surface(path, label: int | None) -> Surface:
-    """A mesh file through :func:`load` or a label volume through :func:`from_segmentation`."""
+def load_input_surface(path, label: int | None, units: str = "mm") -> Surface:
+    """A mesh file through :func:`load` (scaled from `units` to mm) or a label volume through
+    :func:`from_segmentation` (placed in mm by its own voxel size; `units` must be mm)."""
     path = Path(path)
     if not path.is_file():
         raise FileNotFoundError(f"input file not found: {path}")
     if path.name.lower().endswith(VOLUME_SUFFIXES):
         if label is None:
             raise ValueError(f"label missing for label volume {path.name}")
+        if units != "mm":
+            raise ValueError(f"units {units!r} given for label volume {path.name}; a volume is "
+                             "placed in mm by its own voxel size")
         return from_segmentation(path, label)
-    return load(path)
+    return load(path, units=units)
 
 
 def prepare_surface(surface: Surface, options: dict) -> Surface:
@@ -148,7 +155,7 @@ def _compare(template: Surface, subject: Surface, task: SubjectTask, timings: di
 
 def _compute(task: SubjectTask, timings: dict) -> tuple[Surface, dict, dict]:
     with _timed(timings, "load"):
-        raw = load_input_surface(task.path, task.label)
+        raw = load_input_surface(task.path, task.label, task.units)
     n_input = raw.n_vertices
     with _timed(timings, "prepare"):
         subject = prepare_surface(raw, task.options)
@@ -189,8 +196,8 @@ def subject_scalars(subject: Surface, corr, change, fields: dict) -> dict:
         "n_vertices": int(subject.n_vertices),
         "volume_ml": float(subject.volume) / 1000.0,
         "area_mm2": float(subject.area),
-        "volume_change_ml": float(change.volume_change_ml),
-        **{name: metrics[name] for name in CHANGE_COLUMNS},
+        "volume_change_subject_minus_template_ml": float(change.volume_change_ml),
+        **{column: metrics[name] for column, name in CHANGE_COLUMNS.items()},
         "mean_match_confidence": (float(np.mean(fields["match_confidence"]))
                                   if "match_confidence" in fields else None),
         # 1: the shapes barely fix a turn of the map (AmbiguousMatchWarning); check this subject
@@ -208,7 +215,8 @@ def write_subject(task: SubjectTask, subject: Surface, fields: dict, scalars: di
     # the change fields as vertex properties of the template mesh, for viewers
     save(template, out / "on_template.ply",
          fields={k: fields[k] for k in ("normal_displacement", "log_area_ratio")})
-    write_json(out / "row.json", {"subject": task.subject, "key": task.key, "values": scalars})
+    write_json(out / "row.json", {"subject": task.subject, "key": task.key, "units": task.units,
+                                  "values": scalars})
     with atomic_path(out / f"{task.key}{MARKER_SUFFIX}", suffix=MARKER_SUFFIX) as tmp:
         tmp.write_text(task.key + "\n")
 
