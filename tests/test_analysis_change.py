@@ -103,9 +103,9 @@ def test_regional_table_csv_npz_and_fields(tmp_path):
                             names={0: "rest", 1: "bulge"})
     rows = rep.regional_table()
     assert [r["name"] for r in rows] == ["rest", "bulge"]
-    assert rows[1]["mean_normal_displacement_mm"] > 1.0 > abs(rows[0]["mean_normal_displacement_mm"])
-    assert rows[1]["p95_normal_displacement_mm"] >= rows[1]["median_normal_displacement_mm"]
-    assert rows[1]["mapped_area_change_percent"] > 0
+    assert rows[1]["mean_normal_displacement_outward_mm"] > 1.0 > abs(rows[0]["mean_normal_displacement_outward_mm"])
+    assert rows[1]["p95_normal_displacement_outward_mm"] >= rows[1]["median_normal_displacement_outward_mm"]
+    assert rows[1]["mapped_area_change_followup_minus_baseline_percent"] > 0
     assert rows[0]["n_vertices"] + rows[1]["n_vertices"] == base.n_vertices
     p1 = rep.to_csv(tmp_path / "change.csv")
     p2 = rep.to_csv(tmp_path / "again.csv")

@@ -244,8 +244,8 @@ def test_change_outputs_and_reproducible_tables(tmp_path, meshes, capsys):
     assert (tmp_path / "c1" / "report.html").is_file()
     assert len(list((tmp_path / "c1" / "figures").glob("*.png"))) >= 3
     # bulge of up to 4 mm outward: the measured volume grows and the peak is outward
-    assert results[0]["volume_change_ml"] > 0
-    assert results[0]["max_normal_displacement_mm"] > 1.5
+    assert results[0]["volume_change_followup_minus_baseline_ml"] > 0
+    assert results[0]["max_normal_displacement_outward_mm"] > 1.5
     umask = os.umask(0)
     os.umask(umask)
     assert os.stat(tmp_path / "c1").st_mode & 0o777 == 0o777 & ~umask  # not mkdtemp's 0700

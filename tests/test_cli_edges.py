@@ -283,9 +283,9 @@ def test_region_names_from_a_csv_reach_table_report_and_summary(kidney, labelled
         rows = list(csv.DictReader(fh))
     assert [(int(r["label"]), r["name"]) for r in rows] == sorted(NAMES.items())
     assert summary["region_names_from"] == "names.csv"
-    assert sorted(summary["region_mean_normal_displacement_mm"]) == sorted(NAMES.values())
+    assert sorted(summary["region_mean_normal_displacement_outward_mm"]) == sorted(NAMES.values())
     # the same surface on both sides: no displacement anywhere (to rounding)
-    assert max(abs(v) for v in summary["region_mean_normal_displacement_mm"].values()) < 1e-6
+    assert max(abs(v) for v in summary["region_mean_normal_displacement_outward_mm"].values()) < 1e-6
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
     for name in NAMES.values():
         assert name in html
@@ -297,7 +297,7 @@ def test_region_names_from_the_template_sidecar(kidney, labelled, tmp_path, caps
 
     code, summary, _ = _change_with_regions(kidney, labelled, tmp_path / "plain", capsys, "--no-report")
     assert code == 0 and summary["region_names_from"] == "none"
-    assert sorted(summary["region_mean_normal_displacement_mm"]) == ["region_1", "region_2", "region_3"]
+    assert sorted(summary["region_mean_normal_displacement_outward_mm"]) == ["region_1", "region_2", "region_3"]
     side = region_names_sidecar(labelled)
     assert side.name == "template.ply.regions.csv"
     write_region_names(side, {1: "lower pole", 2: "mid zone"})  # one region left unnamed
@@ -308,7 +308,7 @@ def test_region_names_from_the_template_sidecar(kidney, labelled, tmp_path, caps
         side.unlink()
     assert code == 0
     assert summary["region_names_from"] == "template.ply.regions.csv"
-    assert sorted(summary["region_mean_normal_displacement_mm"]) == ["lower pole", "mid zone", "region_3"]
+    assert sorted(summary["region_mean_normal_displacement_outward_mm"]) == ["lower pole", "mid zone", "region_3"]
     assert ("surfacekit: warning: template.ply.regions.csv gives no name for region label(s) 3; "
             "they are called region_<label>") in err.splitlines()
 

@@ -40,7 +40,7 @@ def test_t_column_names_its_direction_and_matches_the_library(tmp_path):
                                   n_permutations=99, seed=1)
     with open(path, newline="") as fh:
         table = list(csv.DictReader(fh))
-    assert list(table[0]) == ["vertex", "mean_control_mm", "mean_case_mm", "t_case_minus_control",
+    assert list(table[0]) == ["vertex", "mean_control_outward_mm", "mean_case_outward_mm", "t_case_minus_control",
                               "p_uncorrected", "p_fwer", "q_fdr"]
     t = np.array([float(r["t_case_minus_control"]) for r in table])
     assert np.all(t[:10] > 0)                          # case lies further outward there

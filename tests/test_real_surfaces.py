@@ -188,7 +188,7 @@ def test_open_baseline_leaves_out_the_cut_and_says_so(ellipsoids):
     result = quiet_compare(cut, follow).change
     summary = result.summary()
     # volume: not reported, with the reason
-    assert math.isnan(summary["volume_change_percent"]) and math.isnan(summary["baseline_volume_ml"])
+    assert math.isnan(summary["volume_change_followup_minus_baseline_percent"]) and math.isnan(summary["baseline_volume_ml"])
     assert summary["volume_note"].startswith("volume not reported: the baseline is open: 1 boundary loop")
     (message,) = summary["warnings"]
     assert message.startswith("the baseline is open: 1 boundary loop, ")
@@ -201,10 +201,10 @@ def test_open_baseline_leaves_out_the_cut_and_says_so(ellipsoids):
     metrics = result.metrics()
     assert metrics["n_vertices"] == int((~band).sum())
     assert metrics["area_mm2"] == pytest.approx(float(cut.vertex_areas[~band].sum()))
-    assert math.isfinite(metrics["mean_normal_displacement_mm"])
+    assert math.isfinite(metrics["mean_normal_displacement_outward_mm"])
     # area change over the covered region: far nearer the closed pair's than whole areas are
     naive = 100 * (follow.area / cut.area - 1)
-    assert abs(summary["area_change_percent"] - closed.area_change_percent) < 8
+    assert abs(summary["area_change_followup_minus_baseline_percent"] - closed.area_change_percent) < 8
     assert abs(naive - closed.area_change_percent) > 20
     assert 0.9 < summary["covered_area_fraction"] < 1.0
 
@@ -216,7 +216,7 @@ def test_open_follow_up_is_named_and_closed_pair_is_untouched(ellipsoids):
     closed = quiet_compare(base, follow).change
     summary = closed.summary()
     assert summary["warnings"] == [] and "volume_note" not in summary
-    assert summary["area_change_percent"] == pytest.approx(100 * (follow.area / base.area - 1))
+    assert summary["area_change_followup_minus_baseline_percent"] == pytest.approx(100 * (follow.area / base.area - 1))
     assert not np.isnan(closed.normal_displacement).any()
 
 
@@ -226,7 +226,7 @@ def test_regions_inside_the_left_out_band_give_empty_rows(ellipsoids, tmp_path):
     labels = boundary_band(cut).astype(int)  # region 1 = the band along the cut
     rows = {r["label"]: r for r in result.regional_table(labels, {0: "inner", 1: "cut ring"})}
     assert rows[1]["n_vertices"] == 0 and rows[1]["area_mm2"] == 0
-    assert math.isnan(rows[1]["mean_normal_displacement_mm"])
+    assert math.isnan(rows[1]["mean_normal_displacement_outward_mm"])
     assert rows[0]["n_vertices"] == int((labels == 0).sum())
     result.save(tmp_path / "c.npz")
     again = sk.ChangeReport.load(tmp_path / "c.npz")
@@ -240,9 +240,9 @@ def _check_real_pair(female: str, male: str):
     summary = result.summary()
     assert [w.split(":")[0] for w in summary["warnings"][:2]] == ["the baseline is open",
                                                                    "the follow-up is open"]
-    assert math.isnan(summary["volume_change_percent"])
-    assert math.isfinite(summary["area_change_percent"])
-    assert math.isfinite(summary["mean_normal_displacement_mm"])
+    assert math.isnan(summary["volume_change_followup_minus_baseline_percent"])
+    assert math.isfinite(summary["area_change_followup_minus_baseline_percent"])
+    assert math.isfinite(summary["mean_normal_displacement_outward_mm"])
     measured = ~np.isnan(result.normal_displacement)
     assert 0.8 < measured.mean() < 1.0
 
@@ -273,7 +273,7 @@ def test_change_command_on_a_real_open_pair_warns_everywhere(capsys, tmp_path):
         assert f"surfacekit: warning: {line}" in err
     report = (out / "report.html").read_text()
     assert "the baseline is open" in report and "the follow-up is open" in report
-    assert math.isnan(summary["volume_change_percent"])
+    assert math.isnan(summary["volume_change_followup_minus_baseline_percent"])
 
 
 def test_prepared_real_pair_goes_through_match_and_change(capsys, tmp_path):
@@ -291,5 +291,5 @@ def test_prepared_real_pair_goes_through_match_and_change(capsys, tmp_path):
                             capsys)
     assert code == 0, err
     summary = json.loads(stdout)
-    assert math.isfinite(summary["volume_change_percent"])  # prepared: closed
+    assert math.isfinite(summary["volume_change_followup_minus_baseline_percent"])  # prepared: closed
     assert not any(" is open: " in w for w in summary["warnings"])

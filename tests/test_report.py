@@ -94,7 +94,9 @@ def test_tables_fit_and_headers_read_as_words(tmp_path):
     assert readable("mean_abs_normal_displacement_mm") == "Mean |normal displacement| (mm)"
     assert readable("area_mm2") == "Area (mm²)"
     assert readable("n_components") == "Number of components"
-    assert readable("volume_change_percent") == "Volume change (%)"
+    assert readable("volume_change_followup_minus_baseline_percent") == "Volume change, follow-up − baseline (%)"
+    assert readable("mean_normal_displacement_outward_mm") == "Mean normal displacement, + outward (mm)"
+    assert readable("mean_log_area_ratio_followup_over_baseline") == "Mean log area ratio, follow-up / baseline"
     assert readable("some_new_key") == "Some new key"  # unknown keys: a readable fallback
     assert readable("true volume (ml)") == "true volume (ml)"  # already written for people
     wide = [{"surface": f"s{i}", **{f"measure_{j}_mm": float(j) for j in range(30)}}

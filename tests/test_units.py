@@ -177,7 +177,7 @@ def test_a_pair_with_mixed_units_is_flagged_everywhere(changes):
     assert "times larger than follow-up" in text and "suggests mm against m" in text
     assert "alignment residual" in text  # the follow-up is a speck: nothing aligns
     # the -100% volume change and the 10^-6 area ratio each carry their likely cause
-    assert summary["volume_change_percent"] < -99.99
+    assert summary["volume_change_followup_minus_baseline_percent"] < -99.99
     assert any(w.startswith("volume change of -100%") and "units problem" in w
                for w in summary["warnings"])
     assert any(w.startswith("area change by a factor 1") and "units problem" in w

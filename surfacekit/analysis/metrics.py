@@ -12,12 +12,12 @@ import numpy as np
 #: columns of the regional table, in order (``label``, ``name``, then the metrics)
 METRIC_NAMES = (
     "n_vertices", "area_mm2",
-    "mean_normal_displacement_mm", "median_normal_displacement_mm",
-    "p5_normal_displacement_mm", "p95_normal_displacement_mm",
-    "min_normal_displacement_mm", "max_normal_displacement_mm",
+    "mean_normal_displacement_outward_mm", "median_normal_displacement_outward_mm",
+    "p5_normal_displacement_outward_mm", "p95_normal_displacement_outward_mm",
+    "min_normal_displacement_outward_mm", "max_normal_displacement_outward_mm",
     "mean_abs_normal_displacement_mm", "p95_abs_normal_displacement_mm",
     "max_abs_normal_displacement_mm",
-    "mean_log_area_ratio", "mapped_area_change_percent", "mean_confidence",
+    "mean_log_area_ratio_followup_over_baseline", "mapped_area_change_followup_minus_baseline_percent", "mean_confidence",
 )
 REGION_COLUMNS = ("label", "name", *METRIC_NAMES)
 
@@ -46,9 +46,11 @@ def change_metrics(report, mask: np.ndarray | None = None) -> dict:
     -------
     dict with the keys of :data:`METRIC_NAMES`: the vertex count, the region's area
     (mm²), area-weighted mean, median, 5th and 95th percentile, minimum and maximum of
-    the normal displacement (mm), mean, 95th percentile and maximum of its absolute
-    value (mm), the area-weighted mean log area ratio, the mapped area change (%,
-    from the area-weighted mean of ``exp(log_area_ratio)``) and the mean confidence.
+    the normal displacement (mm, ``..._outward_mm``: positive = follow-up outside the
+    baseline), mean, 95th percentile and maximum of its absolute value (mm), the
+    area-weighted mean log area ratio (ln(follow-up / baseline area): positive = growth),
+    the mapped area change (%, follow-up minus baseline, from the area-weighted mean of
+    ``exp(log_area_ratio)``) and the mean confidence.  Every signed name states its sign.
     """
     nd = np.asarray(report.normal_displacement, dtype=np.float64)
     lar = np.asarray(report.log_area_ratio, dtype=np.float64)
@@ -68,17 +70,17 @@ def change_metrics(report, mask: np.ndarray | None = None) -> dict:
     absolute = np.abs(nd)
     return {
         "n_vertices": len(nd), "area_mm2": float(w.sum()),
-        "mean_normal_displacement_mm": float(wn @ nd),
-        "median_normal_displacement_mm": weighted_percentile(nd, w, 50),
-        "p5_normal_displacement_mm": weighted_percentile(nd, w, 5),
-        "p95_normal_displacement_mm": weighted_percentile(nd, w, 95),
-        "min_normal_displacement_mm": float(nd.min()),
-        "max_normal_displacement_mm": float(nd.max()),
+        "mean_normal_displacement_outward_mm": float(wn @ nd),
+        "median_normal_displacement_outward_mm": weighted_percentile(nd, w, 50),
+        "p5_normal_displacement_outward_mm": weighted_percentile(nd, w, 5),
+        "p95_normal_displacement_outward_mm": weighted_percentile(nd, w, 95),
+        "min_normal_displacement_outward_mm": float(nd.min()),
+        "max_normal_displacement_outward_mm": float(nd.max()),
         "mean_abs_normal_displacement_mm": float(wn @ absolute),
         "p95_abs_normal_displacement_mm": weighted_percentile(absolute, w, 95),
         "max_abs_normal_displacement_mm": float(absolute.max()),
-        "mean_log_area_ratio": float(wn @ lar),
-        "mapped_area_change_percent": float(100.0 * (wn @ np.exp(lar) - 1.0)),
+        "mean_log_area_ratio_followup_over_baseline": float(wn @ lar),
+        "mapped_area_change_followup_minus_baseline_percent": float(100.0 * (wn @ np.exp(lar) - 1.0)),
         "mean_confidence": float(wn @ conf),
     }
 

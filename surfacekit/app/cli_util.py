@@ -218,5 +218,5 @@ def region_summary(change, names_from: str) -> dict:
         return {}
     rows = change.regional_table()
     return {"region_names_from": names_from,
-            "region_mean_normal_displacement_mm": {r["name"]: r["mean_normal_displacement_mm"]
+            "region_mean_normal_displacement_outward_mm": {r["name"]: r["mean_normal_displacement_outward_mm"]
                                                    for r in rows}}

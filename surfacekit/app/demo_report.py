@@ -69,7 +69,7 @@ def cohort_panel(result_dir: Path, raw_template: Surface, raw_labels: np.ndarray
     cols = {k: np.array([float(r[k]) for r in rows]) for k in rows[0] if k != "vertex"}
     means = [k for k in cols if k.startswith("mean_")]
     labels = raw_labels[cKDTree(raw_template.vertices).query(template.vertices)[1]]
-    first, second = (m[len("mean_"):-len("_mm")] for m in means)  # manifest order
+    first, second = (m[len("mean_"):-len("_outward_mm")] for m in means)  # manifest order
     diff = cols[means[1]] - cols[means[0]]
     result = _GroupColumns(cols, f"t_{second}_minus_{first}")
     panel = group_test_panel("cohort template", template, result, diff, labels,

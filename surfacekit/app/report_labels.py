@@ -3,6 +3,9 @@
 ``mean_abs_normal_displacement_mm`` is shown as "Mean |normal displacement| (mm)";
 a unit suffix becomes a bracketed unit, ``n_`` becomes "Number of", ``abs_x``
 becomes ``|x|``, and a few abbreviations are spelled as they are usually printed.
+A sign suffix is shown in words: ``mean_normal_displacement_outward_mm`` reads
+"Mean normal displacement, + outward (mm)", ``volume_change_followup_minus_baseline_ml``
+reads "Volume change, follow-up − baseline (ml)".
 Keys that are not snake_case (already written for people) are kept as they are.
 """
 from __future__ import annotations
@@ -28,6 +31,11 @@ WORDS = {"rms": "RMS", "fwer": "FWER", "fdr": "FDR", "std": "SD", "sd": "SD", "i
          "max": "max", "min": "min", "p5": "5th percentile", "p95": "95th percentile",
          "p50": "median", "p99": "99th percentile", "p1": "1st percentile", "nd": "normal displacement",
          "gwn": "generalised winding number", "icp": "ICP", "ct": "CT", "csv": "CSV"}
+# sign suffixes of signed columns (last tokens before the unit) -> their sign in words
+SIGNS = {("outward",): "+ outward", ("followup", "minus", "baseline"): "follow-up − baseline",
+         ("followup", "over", "baseline"): "follow-up / baseline",
+         ("subject", "minus", "template"): "subject − template",
+         ("subject", "over", "template"): "subject / template"}
 _SNAKE = re.compile(r"[a-z][a-z0-9]*(_[a-z0-9]+)*")
 
 
@@ -42,6 +50,11 @@ def readable(key) -> str:
     unit = ""
     if len(tokens) > 1 and tokens[-1] in UNITS:
         unit = UNITS[tokens.pop()]
+    sign = ""
+    for suffix, words in SIGNS.items():
+        if len(tokens) > len(suffix) and tuple(tokens[-len(suffix):]) == suffix:
+            sign, tokens = words, tokens[:-len(suffix)]
+            break
     prefix = ""
     if tokens[0] == "n" and len(tokens) > 1:
         prefix, tokens = "number of ", tokens[1:]
@@ -51,5 +64,5 @@ def readable(key) -> str:
         inner = " ".join(words[i + 1:])
         words = words[:i] + ([f"|{inner}|"] if inner else ["absolute"])
     phrase = (prefix + " ".join(words)).replace("non ", "non-")
-    phrase = phrase[:1].upper() + phrase[1:]
+    phrase = phrase[:1].upper() + phrase[1:] + (f", {sign}" if sign else "")
     return f"{phrase} ({unit})" if unit else phrase

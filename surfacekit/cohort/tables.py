@@ -26,7 +26,8 @@ from ..io.tables import write_csv, write_json
 from .manifest import Manifest
 from .subject import CHANGE_COLUMNS
 
-SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2", "volume_change_ml",
+SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2",
+                  "volume_change_subject_minus_template_ml",
                   *CHANGE_COLUMNS, "spectral_distance", "mean_match_confidence",
                   "match_turn_ambiguous")
 RESULT_COLUMNS = ("subject", "group", "label", "status", "error", *SCALAR_COLUMNS)
@@ -181,7 +182,7 @@ def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
     columns = [nd[in_ref].mean(axis=0), nd[in_other].mean(axis=0)] + [
         np.asarray(getattr(res, name), dtype=np.float64)
         for name in ("t", "p_uncorrected", "p_fwer", "q_fdr")]
-    header = ["vertex", f"mean_{ref}_mm", f"mean_{other}_mm", t_name, "p_uncorrected",
+    header = ["vertex", f"mean_{ref}_outward_mm", f"mean_{other}_outward_mm", t_name, "p_uncorrected",
               "p_fwer", "q_fdr"]
     table = [dict(zip(header, (i, *vals))) for i, vals in enumerate(zip(*columns))]
     info = {"field": "normal_displacement (mm, + outward)", "reference_group": ref,
