@@ -48,7 +48,7 @@ def test_scenario_is_deterministic_and_consistent(tmp_path):
     # the template carries four regions as a per-vertex PLY field
     _, fields = sk.io.load_with_fields(a["paths"]["template"])
     assert sorted(np.unique(fields["region"]).astype(int)) == [1, 2, 3, 4]
-    # the manifest follows the agreed contract (notes/contracts.md)
+    # the manifest has the columns the cohort reader takes (surfacekit.cohort.manifest)
     with open(a["paths"]["manifest"], newline="") as fh:
         rows = list(csv.DictReader(fh))
     assert list(rows[0]) == ["subject", "path", "label", "group", "role", "age", "sex"]

@@ -133,6 +133,22 @@ def distortion(source: Surface, target: Surface, source_to_target: np.ndarray) -
     }
 
 
+def map_coverage(source: Surface, target: Surface, corr: Correspondence) -> dict:
+    """Area share of each surface hit by the map (``coverage_source``, ``coverage_target``),
+    after checking that the surfaces are the ones the correspondence was made for."""
+    if source.n_vertices != corr.n_source or target.n_vertices != corr.n_target:
+        raise ValueError(
+            f"surfaces have {source.n_vertices}/{target.n_vertices} vertices, the correspondence "
+            f"expects {corr.n_source}/{corr.n_target}")
+    out = {}
+    for name, surf, hit_by in (("target", target, corr.source_to_target),
+                               ("source", source, corr.target_to_source)):
+        hit = np.zeros(surf.n_vertices, bool)
+        hit[hit_by] = True
+        out[f"coverage_{name}"] = float(surf.vertex_areas[hit].sum() / surf.area)
+    return out
+
+
 def map_quality(source: Surface, target: Surface, corr: Correspondence, ground_truth=None, *,
                 n_samples: int = 200, seed: int = 0) -> dict:
     """Quality measures of a correspondence; with `ground_truth`, also its accuracy.
@@ -149,20 +165,9 @@ def map_quality(source: Surface, target: Surface, corr: Correspondence, ground_t
 
     Returns a JSON-able dict.
     """
-    if source.n_vertices != corr.n_source or target.n_vertices != corr.n_target:
-        raise ValueError(
-            f"surfaces have {source.n_vertices}/{target.n_vertices} vertices, the correspondence "
-            f"expects {corr.n_source}/{corr.n_target}")
+    out = map_coverage(source, target, corr)
     rng = np.random.default_rng(seed)
     s2t, t2s = corr.source_to_target, corr.target_to_source
-    hit_t = np.zeros(target.n_vertices, bool)
-    hit_t[s2t] = True
-    hit_s = np.zeros(source.n_vertices, bool)
-    hit_s[t2s] = True
-    out = {
-        "coverage_target": float(target.vertex_areas[hit_t].sum() / target.area),
-        "coverage_source": float(source.vertex_areas[hit_s].sum() / source.area),
-    }
     for name, surf, there, back in (("source", source, s2t, t2s), ("target", target, t2s, s2t)):
         idx = rng.choice(surf.n_vertices, size=min(n_samples, surf.n_vertices), replace=False)
         rt = geodesic_error(surf, back[there[idx]], idx)
@@ -198,17 +203,10 @@ def quick_map_quality(source: Surface, target: Surface, corr: Correspondence) ->
     :func:`map_notes` judge the coverage (a nearest-vertex map from a coarser
     surface cannot hit every vertex).  Returns a JSON-able dict.
     """
-    if source.n_vertices != corr.n_source or target.n_vertices != corr.n_target:
-        raise ValueError(
-            f"surfaces have {source.n_vertices}/{target.n_vertices} vertices, the correspondence "
-            f"expects {corr.n_source}/{corr.n_target}")
+    out = map_coverage(source, target, corr)
     s2t, t2s = corr.source_to_target, corr.target_to_source
-    out = {}
     rt, rt_mm = [], []
-    for name, surf, there, back in (("source", source, s2t, t2s), ("target", target, t2s, s2t)):
-        hit = np.zeros(surf.n_vertices, bool)
-        hit[back] = True
-        out[f"coverage_{name}"] = float(surf.vertex_areas[hit].sum() / surf.area)
+    for surf, there, back in ((source, s2t, t2s), (target, t2s, s2t)):
         d = np.linalg.norm(surf.vertices[back[there]] - surf.vertices, axis=1)
         rt_mm.append(float(surf.vertex_areas @ d / surf.area))
         rt.append(rt_mm[-1] / float(np.sqrt(surf.area)))
