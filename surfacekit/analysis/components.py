@@ -19,13 +19,6 @@ from ..mesh.surface import Surface, SurfaceError
 SMALL_PIECE_SHARE = 0.05
 
 
-def component_areas(surface: Surface) -> tuple[np.ndarray, np.ndarray]:
-    """Vertex-component label of each face and the area (mm²) of each vertex component."""
-    labels = surface.vertex_components[surface.faces[:, 0]]
-    return labels, np.bincount(labels, weights=surface.face_areas,
-                               minlength=int(surface.vertex_components.max()) + 1)
-
-
 def main_component(surface: Surface, name: str = "surface",
                    limit: float = SMALL_PIECE_SHARE) -> tuple[Surface, np.ndarray, list[str]]:
     """The largest connected piece of `surface` when every other piece is small.
@@ -49,7 +42,7 @@ def main_component(surface: Surface, name: str = "surface",
     """
     if surface.n_components <= 1:
         return surface, np.arange(surface.n_vertices), []
-    face_label, areas = component_areas(surface)
+    face_label, areas = surface.component_areas()
     total = float(areas.sum())
     best = int(np.argmax(areas))
     others = areas > 0

@@ -235,6 +235,12 @@ class Surface:
     # edges, edge_face_counts, boundary_loops, n_components, genus and the other
     # topological properties are read from `connectivity` (defined after the class)
 
+    def component_areas(self) -> tuple[np.ndarray, np.ndarray]:
+        """Vertex-component label of each face, (m,), and the area of each component, (c,) mm²."""
+        labels = self.vertex_components[self._faces[:, 0]]
+        return labels, np.bincount(labels, weights=self.face_areas,
+                                   minlength=int(self.vertex_components.max()) + 1)
+
     @cached_property
     def edge_lengths(self) -> np.ndarray:
         """(e,) lengths of the unique edges (mm)."""

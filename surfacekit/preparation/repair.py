@@ -134,9 +134,7 @@ def keep_largest_component(v: np.ndarray, f: np.ndarray):
 
     Returns ``(v, f, n_removed_components, n_removed_vertices)``.
     """
-    s = Surface(v, f)
-    lab = s.vertex_components[f[:, 0]]
-    area = np.bincount(lab, weights=s.face_areas)
+    lab, area = Surface(v, f).component_areas()
     present = np.unique(lab)
     if len(present) <= 1:
         return v, f, 0, 0
