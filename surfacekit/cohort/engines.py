@@ -100,14 +100,14 @@ def check_main_guard(what: str) -> None:
             "(or use workers=1)")
 
 
-def run_serial(tasks: Sequence[SubjectTask]) -> Iterator[dict]:
+def run_serial(tasks: Sequence[SubjectTask], worker=run_subject) -> Iterator[dict]:
     """In-process engine (``workers=1``): one task after the other."""
     for task in tasks:
-        yield run_subject(task)
+        yield worker(task)
 
 
 def run_processes(tasks: Sequence[SubjectTask], workers: int, *,
-                  max_tasks_per_worker: int | None = None) -> Iterator[dict]:
+                  max_tasks_per_worker: int | None = None, worker=run_subject) -> Iterator[dict]:
     """Local process pool with the "spawn" start method.
 
     Spawned workers start clean (forking a process whose BLAS threads already run can
@@ -127,7 +127,7 @@ def run_processes(tasks: Sequence[SubjectTask], workers: int, *,
             while (pending or running) and not broken:
                 while pending and len(running) < 2 * workers:
                     task = pending.pop()
-                    running[pool.submit(run_subject, task)] = task
+                    running[pool.submit(worker, task)] = task
                 done, _ = wait(running, return_when=FIRST_COMPLETED)
                 for fut in done:
                     task = running.pop(fut)
@@ -143,7 +143,7 @@ def run_processes(tasks: Sequence[SubjectTask], workers: int, *,
             pool.shutdown(wait=True, cancel_futures=True)
 
 
-def run_dask(tasks: Sequence[SubjectTask], scheduler: str) -> Iterator[dict]:
+def run_dask(tasks: Sequence[SubjectTask], scheduler: str, worker=run_subject) -> Iterator[dict]:
     """Dask distributed engine: one task per subject on the cluster at `scheduler`.
 
     Workers must see ``output_dir`` and the input files at the same paths (a
@@ -156,7 +156,7 @@ def run_dask(tasks: Sequence[SubjectTask], scheduler: str) -> Iterator[dict]:
                           "pip install 'surfacekit[cluster]'") from None
     token = uuid.uuid4().hex[:8]  # never pick up a result another run left on the scheduler
     with Client(scheduler, timeout="30s") as client:
-        futures = client.map(run_subject, list(tasks), pure=False,
+        futures = client.map(worker, list(tasks), pure=False,
                              key=[f"surfacekit-{t.subject}-{t.key}-{token}" for t in tasks])
         by_key = {f.key: t for f, t in zip(futures, tasks)}
         try:
@@ -172,15 +172,20 @@ def run_dask(tasks: Sequence[SubjectTask], scheduler: str) -> Iterator[dict]:
 
 
 def run_tasks(tasks: Sequence[SubjectTask], *, workers: int = 1, scheduler: str | None = None,
-              max_tasks_per_worker: int | None = None) -> Iterator[dict]:
-    """Pick the engine: Dask when `scheduler` is given, else processes when ``workers > 1``."""
+              max_tasks_per_worker: int | None = None, worker=run_subject) -> Iterator[dict]:
+    """Pick the engine: Dask when `scheduler` is given, else processes when ``workers > 1``.
+
+    `worker` is the module-level function run on each task (default: one subject's
+    template comparison; a series of scans has its own, which never raises either).
+    """
     if not tasks:
         return iter(())
     if scheduler:
-        return run_dask(tasks, scheduler)
+        return run_dask(tasks, scheduler, worker)
     if workers > 1:
-        return run_processes(tasks, workers, max_tasks_per_worker=max_tasks_per_worker)
-    return run_serial(tasks)
+        return run_processes(tasks, workers, max_tasks_per_worker=max_tasks_per_worker,
+                             worker=worker)
+    return run_serial(tasks, worker)
 
 
 def engine_name(workers: int, scheduler: str | None) -> str:
