@@ -107,9 +107,51 @@ def _covariate_matrix(covariates, n: int) -> np.ndarray:
     return c
 
 
+def _is_lazy(x) -> bool:
+    """Chunked arrays read block by block (Dask, Zarr, HDF5 datasets): they have ``.chunks``."""
+    return hasattr(x, "chunks") and hasattr(x, "shape") and not isinstance(x, np.ndarray)
+
+
+def _group_input(x, name: str):
+    """A numpy (n, v) matrix checked at once, or a chunked (n, v) array checked block by block."""
+    if not _is_lazy(x):
+        return _as_matrix(x, name)
+    if len(x.shape) != 2:
+        raise ValueError(f"{name} must have shape (subjects, vertices), got {tuple(x.shape)}")
+    return x
+
+
+def _columns(x, start: int, stop: int, name: str) -> np.ndarray:
+    """Columns start:stop of a group as float64, computed now when `x` is chunked."""
+    block = x[:, start:stop]
+    if hasattr(block, "compute"):
+        block = block.compute()
+    return _as_matrix(block, name)
+
+
+def _permutations(rng, n_permutations: int, n: int, chunk: int) -> np.ndarray:
+    """(n_permutations, n) random permutations as int32, drawn `chunk` rows at a time (the
+    same stream as one draw, without its (n_permutations, n) float64 temporary)."""
+    perms = np.empty((n_permutations, n), dtype=np.int32)
+    for start in range(0, n_permutations, chunk):
+        stop = min(start + chunk, n_permutations)
+        perms[start:stop] = np.argsort(rng.random((stop - start, n)), axis=1)
+    return perms
+
+
+def _vertex_block(n: int, p: int, chunk_size: int, n_vertices: int, vertex_block) -> int:
+    """Vertices per block: the block of data (n rows) and of permuted projections
+    (chunk_size·p rows) each hold at most ~32 MB, whatever the number of vertices."""
+    if vertex_block is not None:
+        if int(vertex_block) < 1:
+            raise ValueError(f"vertex_block must be >= 1, got {vertex_block}")
+        return min(int(vertex_block), n_vertices)
+    return max(1, min(n_vertices, (32 << 20) // (8 * max(n, chunk_size * (p + 1)))))
+
+
 def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: int = 0,
                           covariates=None, *, alternative: str = "two-sided",
-                          chunk_size: int = 250) -> GroupTestResult:
+                          chunk_size: int = 250, vertex_block: int | None = None) -> GroupTestResult:
     """Vertex-wise two-group test with permutation FWER control and FDR q-values.
 
     Model per vertex: ``y = β0 + β1·g + Zγ + ε`` with g = 1 for group A, 0 for B
@@ -122,24 +164,31 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     Brain Mapp. 2002): ``p_fwer = (1 + #{max_perm >= stat}) / (1 + n_permutations)``.
     q-values: Benjamini & Hochberg (J. R. Stat. Soc. B 1995) applied to the per-vertex
     permutation p-values (same +1 rule), by ``scipy.stats.false_discovery_control``.
-    Vectorised: each chunk of permutations is one
-    matrix product ``(chunk·p, n) @ (n, v)``.
+    Vectorised: each chunk of permutations is one matrix product ``(chunk·p, n) @ (n, b)``
+    over a block of b vertices.  Vertices are independent except for the maximum over
+    them, so the test runs block by block and keeps only per-vertex results and the
+    running maximum per permutation: memory is set by the block, not by the number of
+    subjects times vertices.
 
     Parameters
     ----------
-    group_a, group_b : (n_a, v), (n_b, v) per-vertex values (e.g. normal displacement, mm)
+    group_a, group_b : (n_a, v), (n_b, v) per-vertex values (e.g. normal displacement, mm):
+        numpy arrays, or chunked arrays (a Dask array such as a cohort field store's
+        rows, a Zarr array) that are read one vertex block at a time
     n_permutations : number of random permutations (>= 1)
     seed : random seed (the result is deterministic for a seed)
     covariates : (n_a + n_b, c), rows in the order group A then group B, optional
     alternative : "two-sided" (|t|), "greater" (A > B) or "less" (A < B)
-    chunk_size : permutations per matrix product (memory ~ chunk_size·v·8·(p+1) bytes)
+    chunk_size : permutations per matrix product
+    vertex_block : vertices per block (default: about 32 MB of data and of projections
+        per block); results agree across block sizes to rounding
 
     Returns
     -------
     GroupTestResult
     """
-    a = _as_matrix(group_a, "group_a")
-    b = _as_matrix(group_b, "group_b")
+    a = _group_input(group_a, "group_a")
+    b = _group_input(group_b, "group_b")
     if a.shape[1] != b.shape[1]:
         raise ValueError(f"groups have different vertex counts: {a.shape[1]} and {b.shape[1]}")
     if a.shape[0] < 2 or b.shape[0] < 2:
@@ -149,58 +198,86 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     if int(n_permutations) < 1:
         raise ValueError(f"n_permutations must be >= 1, got {n_permutations}")
     n_permutations = int(n_permutations)
-    y = np.vstack([a, b])
-    n = y.shape[0]
+    n, n_vertices = a.shape[0] + b.shape[0], int(a.shape[1])
     g = np.r_[np.ones(a.shape[0]), np.zeros(b.shape[0])]
     z = np.column_stack([np.ones(n), _covariate_matrix(covariates, n)])
     x = np.column_stack([g, z])  # full design; column 0 is the effect of interest
     p = x.shape[1]
-    df = n - p
-    if df < 1 or np.linalg.matrix_rank(x) < p:
+    if n - p < 1 or np.linalg.matrix_rank(x) < p:
         raise ValueError("design is rank deficient (a covariate duplicates the groups or "
                          "the intercept, or too few subjects)")
-    qx, _ = np.linalg.qr(x)                       # (n, p) orthonormal basis of the design
-    pinv_x = np.linalg.pinv(x)
-    contrast_w = pinv_x[0]                          # β1 = w · y
-    var_factor = float(contrast_w @ contrast_w)     # (XᵀX)⁻¹ entry of β1
-    contrast_in_q = qx.T @ contrast_w               # w lies in span(X): w = Qx a
-    qz, _ = np.linalg.qr(z)
-    resid_z = y - qz @ (qz.T @ y)                   # reduced-model residuals (Freedman–Lane)
-    ss_total = np.einsum("ij,ij->j", resid_z, resid_z)
-
-    def t_stats(perms: np.ndarray) -> np.ndarray:
-        # Data y* = Ẑ + P r: the Z-fitted part lies in span(X), so it leaves both
-        # β1 and the full-model residuals unchanged; only P r matters.
-        # Rows of Qxᵀ P (one (p, n) block per permutation), one matrix product for all.
-        c = perms.shape[0]
-        qp = np.empty((c, p, n))
-        qp[np.arange(c)[:, None, None], np.arange(p)[None, :, None], perms[:, None, :]] = qx.T
-        proj = (qp.reshape(c * p, n) @ resid_z).reshape(c, p, -1)
-        beta = np.einsum("k,ckv->cv", contrast_in_q, proj)  # β1 = wᵀ P r with w = Qx a
-        rss = np.maximum(ss_total - np.einsum("cpv,cpv->cv", proj, proj), 0.0)
-        se = np.sqrt(rss / df * var_factor)
-        return np.divide(beta, se, out=np.zeros_like(beta), where=se > 0)
-
-    identity = np.arange(n)[None, :]
-    t_obs = t_stats(identity)[0]
+    model = _Model(x, z, chunk_size)
+    perms = _permutations(np.random.default_rng(seed), n_permutations, n, chunk_size)
     sign = {"two-sided": None, "greater": 1.0, "less": -1.0}[alternative]
-    stat_obs = np.abs(t_obs) if sign is None else sign * t_obs
-    rng = np.random.default_rng(seed)
-    perms_all = np.argsort(rng.random((n_permutations, n)), axis=1)
-    max_null = np.empty(n_permutations)
-    exceed = np.zeros(y.shape[1], dtype=np.int64)
-    for start in range(0, n_permutations, chunk_size):
-        t_perm = t_stats(perms_all[start:start + chunk_size])
-        stat = np.abs(t_perm) if sign is None else sign * t_perm
-        max_null[start:start + len(stat)] = stat.max(axis=1)
-        exceed += (stat >= stat_obs - 1e-12).sum(axis=0)
+    width = _vertex_block(n, p, chunk_size, n_vertices, vertex_block)
+    t_obs, effect = np.empty(n_vertices), np.empty(n_vertices)
+    exceed = np.zeros(n_vertices, dtype=np.int64)
+    max_null = np.full(n_permutations, -np.inf)
+    for v0 in range(0, n_vertices, width):
+        v1 = min(v0 + width, n_vertices)
+        y = np.vstack([_columns(a, v0, v1, "group_a"), _columns(b, v0, v1, "group_b")])
+        t_obs[v0:v1], effect[v0:v1] = model.observed(y)
+        exceed[v0:v1] = model.null(y, perms, sign, t_obs[v0:v1], max_null)
     sorted_max = np.sort(max_null)
+    stat_obs = np.abs(t_obs) if sign is None else sign * t_obs
     n_ge = n_permutations - np.searchsorted(sorted_max, stat_obs - 1e-12, side="left")
     p_fwer = (1.0 + n_ge) / (1.0 + n_permutations)
     p_unc = (1.0 + exceed) / (1.0 + n_permutations)
     return GroupTestResult(
         t=t_obs, p_fwer=p_fwer, q_fdr=false_discovery_control(p_unc), p_uncorrected=p_unc,
-        effect=contrast_w @ y, max_null=max_null, n_permutations=n_permutations,
-        alternative=alternative, df=int(df),
+        effect=effect, max_null=max_null, n_permutations=n_permutations,
+        alternative=alternative, df=int(n - p),
         info={"method": "Freedman-Lane permutation of reduced-model residuals, max-T",
               "n_covariates": int(p - 2), "seed": int(seed)})
+
+
+class _Model:
+    """The fixed design of :func:`vertexwise_group_test`, applied to one vertex block at a time."""
+
+    def __init__(self, x: np.ndarray, z: np.ndarray, chunk_size: int):
+        n, self.p = x.shape
+        self.df = n - self.p
+        self.chunk_size = int(chunk_size)
+        self.qx, _ = np.linalg.qr(x)                    # (n, p) orthonormal basis of the design
+        self.contrast_w = np.linalg.pinv(x)[0]          # β1 = w · y
+        self.var_factor = float(self.contrast_w @ self.contrast_w)  # (XᵀX)⁻¹ entry of β1
+        self.contrast_in_q = self.qx.T @ self.contrast_w  # w lies in span(X): w = Qx a
+        self.qz, _ = np.linalg.qr(z)
+
+    def _prepare(self, y: np.ndarray) -> None:
+        self.resid_z = y - self.qz @ (self.qz.T @ y)    # reduced-model residuals (Freedman–Lane)
+        self.ss_total = np.einsum("ij,ij->j", self.resid_z, self.resid_z)
+
+    def t_stats(self, perms: np.ndarray) -> np.ndarray:
+        # Data y* = Ẑ + P r: the Z-fitted part lies in span(X), so it leaves both
+        # β1 and the full-model residuals unchanged; only P r matters.
+        # Rows of Qxᵀ P (one (p, n) block per permutation), one matrix product for all.
+        c, n = perms.shape
+        p = self.p
+        qp = np.empty((c, p, n))
+        qp[np.arange(c)[:, None, None], np.arange(p)[None, :, None], perms[:, None, :]] = self.qx.T
+        proj = (qp.reshape(c * p, n) @ self.resid_z).reshape(c, p, -1)
+        beta = np.einsum("k,ckv->cv", self.contrast_in_q, proj)  # β1 = wᵀ P r with w = Qx a
+        rss = np.maximum(self.ss_total - np.einsum("cpv,cpv->cv", proj, proj), 0.0)
+        se = np.sqrt(rss / self.df * self.var_factor)
+        return np.divide(beta, se, out=np.zeros_like(beta), where=se > 0)
+
+    def observed(self, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """t and effect of one vertex block (n, b)."""
+        self._prepare(y)
+        identity = np.arange(y.shape[0])[None, :]
+        return self.t_stats(identity)[0], self.contrast_w @ y
+
+    def null(self, y: np.ndarray, perms: np.ndarray, sign, t_obs: np.ndarray,
+             max_null: np.ndarray) -> np.ndarray:
+        """Exceedance counts of the block; raises `max_null` to the block's maxima in place."""
+        stat_obs = np.abs(t_obs) if sign is None else sign * t_obs
+        exceed = np.zeros(y.shape[1], dtype=np.int64)
+        for start in range(0, perms.shape[0], self.chunk_size):
+            t_perm = self.t_stats(perms[start:start + self.chunk_size])
+            stat = np.abs(t_perm) if sign is None else sign * t_perm
+            chunk = max_null[start:start + len(stat)]
+            np.maximum(chunk, stat.max(axis=1), out=chunk)
+            exceed += (stat >= stat_obs - 1e-12).sum(axis=0)
+        self.resid_z = self.ss_total = None
+        return exceed
