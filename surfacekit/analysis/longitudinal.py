@@ -69,7 +69,8 @@ def check_same_organ(surfaces: list[Surface], names: list[str]) -> None:
     for s, name in zip(surfaces[1:], names[1:]):
         found = scale_warnings(surfaces[0], s, (names[0], name))
         if found:
-            raise SurfaceError(f"not the same organ as the baseline: {found[0]}")
+            raise SurfaceError(f"{name} is probably not the same organ as the baseline "
+                               f"({names[0]}), or is in other units: {found[0]}")
 
 
 def compare_series(surfaces, times_years, *, options: MatchOptions | None = None,

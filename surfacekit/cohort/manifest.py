@@ -10,6 +10,13 @@ and copied to the cohort table.  Exactly one row has ``role`` ``template``
 the length unit of a mesh file (mm, cm, m or the size of one file unit in mm, as
 ``load(path, units=...)`` takes; blank means the run's default, mm unless given);
 it is not a covariate.
+
+A **series manifest** has a ``date`` (ISO 8601, ``YYYY-MM-DD``) or a numeric
+``time_years`` column (or both; a row's ``time_years`` wins over its ``date``).
+Then a subject may have several rows, its scans; they form its series in time
+order (see :mod:`surfacekit.cohort.timeline` for the checks of each row).  The
+subject's baseline, its earliest scan with a valid time, is the row matched to
+the template in the cohort tables.  Neither column is a covariate.
 """
 from __future__ import annotations
 
@@ -22,9 +29,11 @@ from pathlib import Path
 
 from ..io.units import parse_units
 from ..mesh.surface import SurfaceError
+from .timeline import group_scans
 
 REQUIRED_COLUMNS = ("subject", "path", "label", "group", "role", "age", "sex")
 UNITS_COLUMN = "units"   # optional; never a covariate
+TIME_COLUMNS = ("date", "time_years")   # optional; either makes a series manifest
 VOLUME_SUFFIXES = (".nii", ".nii.gz")
 # Bump when the per-subject computation changes meaning, so old caches are not reused.
 PIPELINE_VERSION = "cohort-2"   # 2: area-weighted change metrics, one eigenbasis per surface
@@ -42,6 +51,9 @@ class ManifestEntry:
     role: str = "subject"
     covariates: dict = field(default_factory=dict)   # age, sex and any extra columns (strings)
     units: str = "mm"      # length unit of a mesh file (name from parse_units)
+    line: int = 0          # line of the manifest
+    date: str = ""         # series manifests: the date cell as written
+    time_years: str = ""   # series manifests: the time_years cell as written
 
     @property
     def is_volume(self) -> bool:
@@ -56,6 +68,8 @@ class Manifest:
     subjects: tuple[ManifestEntry, ...]
     template: ManifestEntry | None
     covariate_names: tuple[str, ...]
+    #: series manifests: every scan row of each subject, in file order (None otherwise)
+    scans: dict[str, tuple[ManifestEntry, ...]] | None = None
 
     @property
     def groups(self) -> list[str]:
@@ -115,7 +129,8 @@ def read_manifest(path, *, template=None, units="mm") -> Manifest:
                              f"(header must be {','.join(REQUIRED_COLUMNS)})")
         reader.fieldnames = header
         default_units = _parse_units(str(units), None)
-        extra = [h for h in header if h not in (*REQUIRED_COLUMNS, UNITS_COLUMN)]
+        extra = [h for h in header if h not in (*REQUIRED_COLUMNS, UNITS_COLUMN, *TIME_COLUMNS)]
+        is_series = any(c in header for c in TIME_COLUMNS)
         covariate_names = ("age", "sex", *extra)
         subjects: list[ManifestEntry] = []
         templates: list[ManifestEntry] = []
@@ -137,12 +152,17 @@ def read_manifest(path, *, template=None, units="mm") -> Manifest:
                 subject=sid, path=p if p.is_absolute() else base / p,
                 label=_parse_label(row["label"], line), group=row["group"], role=role,
                 covariates={c: row.get(c, "") for c in covariate_names},
-                units=_parse_units(row.get(UNITS_COLUMN) or default_units, line))
+                units=_parse_units(row.get(UNITS_COLUMN) or default_units, line), line=line,
+                date=row.get("date", ""), time_years=row.get("time_years", ""))
             (templates if role == "template" else subjects).append(entry)
+    scans = None
+    if is_series:  # one row per subject (its baseline) for the template comparison
+        subjects, scans = group_scans(subjects)
     seen: set[str] = set()
     for e in subjects:
         if e.subject in seen:
-            raise ValueError(f"manifest {path.name}: subject id {e.subject!r} appears twice")
+            raise ValueError(f"manifest {path.name}: subject id {e.subject!r} appears twice "
+                             "(several scans of one subject need a date or time_years column)")
         seen.add(e.subject)
     if template is not None:
         tpath = Path(template)
@@ -163,7 +183,7 @@ def read_manifest(path, *, template=None, units="mm") -> Manifest:
     if not subjects:
         raise ValueError(f"manifest {path.name} lists no subjects")
     return Manifest(path=path, subjects=tuple(subjects), template=chosen,
-                    covariate_names=tuple(covariate_names))
+                    covariate_names=tuple(covariate_names), scans=scans)
 
 
 def file_digest(path) -> str:

@@ -35,6 +35,7 @@ from ..io.tables import write_json
 from ..version import __version__
 from .engines import check_main_guard, engine_name, run_tasks
 from .manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
+from .series_tables import run_series_stage, series_lines
 from .subject import (
     MARKER_SUFFIX,
     STAGES,
@@ -80,6 +81,7 @@ class CohortResult:
     peak_rss_mb: dict = field(default_factory=dict)
     tables: dict = field(default_factory=dict)
     group_test: dict = field(default_factory=dict)
+    series: list = field(default_factory=list)   # series manifests: per subject, status and error
 
     @property
     def n_subjects(self) -> int:
@@ -107,7 +109,7 @@ class CohortResult:
         if self.peak_rss_mb:
             lines.append(f"peak memory per worker: {max(self.peak_rss_mb.values()):.0f} MiB "
                          f"(max over {len(self.peak_rss_mb)} worker processes)")
-        lines += covariate_lines(self.group_test)
+        lines += covariate_lines(self.group_test) + series_lines(self.series)
         for subject, error in self.failed[:20]:
             lines.append(f"failed {subject}: {error}")
         if self.n_failed > 20:
@@ -332,12 +334,16 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
                                    len(man.subjects) - len(tasks), progress)
     tables, group_info = _write_tables(out, man, rows, n_template, options,
                            n_permutations=int(n_permutations))
+    series = run_series_stage(man, out, rows, tables, options, match_options, force=force,
+                              workers=int(workers), scheduler=scheduler, n_template=n_template,
+                              max_tasks_per_worker=max_tasks_per_worker,
+                              n_permutations=int(n_permutations))
     result = CohortResult(
         output_dir=out, engine=engine_name(int(workers), scheduler), rows=rows,
         n_computed=len(tasks), n_cached=len(man.subjects) - len(tasks),
         n_failed=sum(r["status"] != "ok" for r in rows),
         wall_seconds=time.perf_counter() - start, stage_seconds=stage_seconds,
-        peak_rss_mb=peak, tables=tables, group_test=group_info)
+        peak_rss_mb=peak, tables=tables, group_test=group_info, series=series)
     write_json(out / "run_summary.json", {
         "engine": result.engine, "n_subjects": result.n_subjects,
         "n_computed": result.n_computed, "n_cached": result.n_cached,
@@ -346,7 +352,7 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
         "peak_rss_mb": peak, "version": __version__, "options": options,
         "units": {"template": man.template.units,
                   "subjects": {e.subject: e.units for e in man.subjects}},
-        "failed": result.failed, "group_test": group_info})
+        "failed": result.failed, "group_test": group_info, **({"series": series} if series else {})})
     if result.n_subjects and result.n_failed == result.n_subjects:
         raise CohortFailedError(result)
     return result
