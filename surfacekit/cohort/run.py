@@ -7,14 +7,19 @@ written under ``output_dir/subjects/<id>/`` and marked done under a key derived
 from the input bytes, template, options (including the ``MatchOptions``) and
 package version, so a re-run skips finished subjects, an interrupted run resumes
 and changed options recompute.  Then the cohort tables are
-written in manifest order (``cohort_summary.csv``, ``cohort_fields.npz``,
-``group_test.csv``), byte-identical whatever the engine or completion order.
+written in manifest order (``cohort_summary.csv``, ``group_test.csv``, and
+``cohort_fields.npz`` for cohorts small enough), byte-identical whatever the engine
+or completion order.  Each worker also writes its subject's per-template-vertex
+fields into ``cohort_fields.zarr`` as it finishes (one chunk per subject and field,
+rows in manifest order; see :mod:`surfacekit.cohort.store`); the group test reads
+that store chunk by chunk, so its memory does not grow with the cohort.
 
 Layout of ``output_dir``::
 
     template/template.npz (vertices, faces), template.ply, <key>.done
     subjects/<id>/fields.npz, prepared.ply, on_template.ply, row.json, timings.json, <key>.done
-    cohort_summary.csv  cohort_fields.npz  group_test.csv  run_summary.json
+    cohort_fields.zarr/ (the field store)  cohort_summary.csv  group_test.csv  run_summary.json
+    cohort_fields.npz (export of the store while subjects x vertices <= NPZ_EXPORT_MAX_VALUES)
 
 The research-use note of :data:`surfacekit.io.tables.RESEARCH_NOTE` applies.
 """
@@ -36,17 +41,25 @@ from ..version import __version__
 from .engines import check_main_guard, engine_name, run_tasks
 from .manifest import Manifest, ManifestEntry, cache_key, file_digest, read_manifest
 from .series_tables import run_series_stage, series_lines
+from .store import FieldStore, create_field_store
 from .subject import (
     MARKER_SUFFIX,
     STAGES,
+    STORE_FIELDS,
     SubjectTask,
     load_input_surface,
     prepare_surface,
     read_finished,
+    store_layout,
+    store_values,
 )
 from .tables import check_covariate_names, write_fields_matrix, write_group_test, write_summary
 
 logger = logging.getLogger(__name__)
+STORE_NAME = "cohort_fields.zarr"
+# cohort_fields.npz is exported from the store up to this many values per per-vertex matrix
+# (e.g. 2,500 subjects x 20,000 vertices: 400 MB per field); larger cohorts keep the store only
+NPZ_EXPORT_MAX_VALUES = 50_000_000
 
 __all__ = ["CohortFailedError", "CohortResult", "read_manifest", "run_cohort"]
 
@@ -179,19 +192,36 @@ def prepare_template(entry: ManifestEntry, out: Path, options: dict) -> tuple[Pa
     return tfile, key, n_template
 
 
+def _fill_store(store: FieldStore, i: int, sdir: Path, complete: bool) -> bool:
+    """Copy a finished subject's fields into its store row unless that row is `complete`
+    (a store made after the subject was, or for a changed manifest); False if unreadable."""
+    if complete:
+        return True
+    try:
+        with np.load(sdir / "fields.npz", allow_pickle=False) as data:
+            fields = {k: data[k] for k in data.files}
+        store.write_subject(i, store_values(fields, store.fields))
+    except (OSError, ValueError, KeyError):
+        return False
+    return True
+
+
 def _plan(man: Manifest, out: Path, template: tuple[Path, str], options: dict,
-          match_options: MatchOptions, force: bool) -> tuple[list, list[SubjectTask]]:
-    """Rows of subjects finished under their current key, and tasks for the others."""
+          match_options: MatchOptions, force: bool,
+          store: FieldStore) -> tuple[list, list[SubjectTask]]:
+    """Rows of subjects finished under their current key (their store rows complete), and
+    tasks for the others."""
     tfile, tkey = template
     rows: list[dict | None] = [None] * len(man.subjects)
     tasks: list[SubjectTask] = []
+    complete = store.written()
     for i, entry in enumerate(man.subjects):
         sdir = out / "subjects" / entry.subject
         key = cache_key(input_digest=_digest_or_marker(entry.path), label=entry.label,
                         template_key=tkey, options={**options, "units": entry.units},
                         version=__version__)
         stored = None if force else read_finished(sdir, key)
-        if stored is not None:
+        if stored is not None and _fill_store(store, i, sdir, bool(complete[i])):
             rows[i] = {"index": i, "subject": entry.subject, "key": key, "cached": True,
                        "status": "ok", "error": "", "values": stored}
         else:
@@ -199,7 +229,7 @@ def _plan(man: Manifest, out: Path, template: tuple[Path, str], options: dict,
                                      label=entry.label, key=key, subject_dir=str(sdir),
                                      template_file=str(tfile), template_key=tkey,
                                      options=options, match_options=match_options,
-                                     units=entry.units))
+                                     units=entry.units, field_store=str(store.path)))
     return rows, tasks
 
 
@@ -240,17 +270,20 @@ def covariate_lines(info: dict) -> list[str]:
             + (f"; not used: {dropped} (reasons in group_test.json)" if dropped else "")]
 
 
-def _write_tables(out: Path, man: Manifest, rows: list[dict], n_template: int, options: dict,
+def _write_tables(out: Path, man: Manifest, rows: list[dict], store: FieldStore, options: dict,
                   *, n_permutations: int) -> tuple[dict, dict]:
     """The cohort tables, in manifest order, and the group test's info; a stale group test
-    of an earlier run is removed."""
-    subject_dirs = [out / "subjects" / e.subject for e in man.subjects]
-    tables = {"summary": write_summary(out / "cohort_summary.csv", man, rows)}
-    tables["fields"] = write_fields_matrix(out / "cohort_fields.npz", man, rows, subject_dirs,
-                                           n_template, options["n_eigenvalues"])
+    of an earlier run is removed, and so is a stale NPZ export."""
+    tables = {"summary": write_summary(out / "cohort_summary.csv", man, rows),
+              "field_store": store.path}
+    npz = out / "cohort_fields.npz"
+    if store.n_subjects * store.fields["normal_displacement"][0] <= NPZ_EXPORT_MAX_VALUES:
+        tables["fields"] = write_fields_matrix(npz, man, rows, store)
+    else:
+        npz.unlink(missing_ok=True)
     group_file = out / "group_test.csv"
     try:
-        written = write_group_test(group_file, man, rows, tables["fields"],
+        written = write_group_test(group_file, man, rows, store,
                                    n_permutations=n_permutations, seed=options["seed"])
     except ValueError as exc:  # e.g. fields identical across subjects: keep the other tables
         logger.warning("cohort: no group test: %s", exc)
@@ -327,12 +360,15 @@ def run_cohort(manifest, output_dir, template=None, *, workers: int = 1,
     (out / "subjects").mkdir(parents=True, exist_ok=True)
     options = pipeline_options(target_vertices, n_eigenvalues, seed, match_options)
     tfile, tkey, n_template = prepare_template(man.template, out, options)
-    rows, tasks = _plan(man, out, (tfile, tkey), options, match_options, force)
+    store = create_field_store(out / STORE_NAME, [e.subject for e in man.subjects],
+                               store_layout(n_template, options["n_eigenvalues"]),
+                               units=STORE_FIELDS)
+    rows, tasks = _plan(man, out, (tfile, tkey), options, match_options, force, store)
     results = run_tasks(tasks, workers=int(workers), scheduler=scheduler,
                         max_tasks_per_worker=max_tasks_per_worker)
     stage_seconds, peak = _collect(results, rows, len(man.subjects),
                                    len(man.subjects) - len(tasks), progress)
-    tables, group_info = _write_tables(out, man, rows, n_template, options,
+    tables, group_info = _write_tables(out, man, rows, store, options,
                            n_permutations=int(n_permutations))
     series = run_series_stage(man, out, rows, tables, options, match_options, force=force,
                               workers=int(workers), scheduler=scheduler, n_template=n_template,

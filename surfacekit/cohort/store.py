@@ -8,8 +8,8 @@ Layout of ``<name>.zarr`` (Zarr format 3, opens with plain ``zarr.open`` and
                          row shape, e.g. [n_template] or [n_template, 3]), ``units``,
                          ``format`` and the research-use note
     <field>              float64 (subjects, *row shape), chunks (1, *row shape), NaN fill
-    written              uint8 (subjects, fields) in the order of ``fields``, chunks (1, 1):
-                         1 once that subject's chunk of that field is complete
+    written              uint8 (subjects, fields) in the order of ``fields``, one chunk
+                         per subject: 1 once that subject's chunk of that field is complete
 
 A row is written by whichever process finished that subject (each worker writes
 only its own chunks; Zarr's local store writes every chunk to a temporary file and
@@ -119,8 +119,9 @@ class FieldStore:
         for name, a in rows.items():
             self.group[name][i] = a
         flags = self.group[_WRITTEN]
-        for name in rows:
-            flags[i, self._field(name)] = 1
+        row = np.asarray(flags[i])
+        row[[self._field(name) for name in rows]] = 1
+        flags[i] = row
         return list(rows)
 
     def clear_subject(self, subject: int | str) -> None:
@@ -205,7 +206,7 @@ def create_field_store(path, subjects: Sequence[str], fields: Mapping[str, Seque
         for name, shape in layout.items():
             group.create_array(name, shape=(len(subjects), *shape), chunks=(1, *shape),
                                dtype="float64", fill_value=np.nan, compressors=codec)
-        group.create_array(_WRITTEN, shape=(len(subjects), len(layout)), chunks=(1, 1),
+        group.create_array(_WRITTEN, shape=(len(subjects), len(layout)), chunks=(1, len(layout)),
                            dtype="uint8", fill_value=0, compressors=codec)
         if found is not None:
             shutil.rmtree(path)

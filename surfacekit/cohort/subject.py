@@ -33,6 +33,7 @@ from ..mesh.eigen import Eigenbasis, eigenbasis
 from ..mesh.surface import Surface
 from ..preparation import from_segmentation, prepare
 from .manifest import VOLUME_SUFFIXES
+from .store import open_field_store
 
 STAGES = ("load", "prepare", "descriptors", "match", "change", "write")
 # change metrics of the cohort table (column -> change-summary name), taken from the change
@@ -42,6 +43,13 @@ CHANGE_COLUMNS = {"mean_abs_normal_displacement_mm": "mean_abs_normal_displaceme
                   "max_abs_normal_displacement_mm": "max_abs_normal_displacement_mm",
                   "mean_log_area_ratio_subject_over_template": "mean_log_area_ratio_followup_over_baseline"}
 MARKER_SUFFIX = ".done"
+# the fields of each subject in the cohort's field store (name -> unit); rows follow the cohort
+# table, one chunk per subject and field (see surfacekit.cohort.store)
+STORE_FIELDS = {"normal_displacement": "mm, + outward (template -> subject)",
+                "log_area_ratio": "ln(subject area / template area) per template vertex",
+                "displacement": "mm, subject position minus template position (x, y, z)",
+                "match_confidence": "0..1, NaN where the map gives none",
+                "laplace_spectrum": "dimensionless (area-normalised eigenvalues)"}
 
 
 @dataclass(frozen=True)
@@ -59,6 +67,7 @@ class SubjectTask:
     options: dict           # target_vertices, n_eigenvalues, seed, match (as in the cache key)
     match_options: MatchOptions
     units: str = "mm"       # length unit of a mesh input (enters the cache key)
+    field_store: str = ""   # the cohort's field store; row `index` is this subject's
 
 
 def load_input_surface(path, label: int | None, units: str = "mm") -> Surface:
@@ -205,11 +214,34 @@ def subject_scalars(subject: Surface, corr, change, fields: dict) -> dict:
     }
 
 
+def store_layout(n_template: int, n_eigenvalues: int) -> dict:
+    """Row shape of each :data:`STORE_FIELDS` field for a template of `n_template` vertices."""
+    shapes = {"displacement": (n_template, 3), "laplace_spectrum": (n_eigenvalues,)}
+    return {name: shapes.get(name, (n_template,)) for name in STORE_FIELDS}
+
+
+def store_values(fields: dict, layout: dict) -> dict:
+    """A subject's :data:`STORE_FIELDS` rows (shapes of :func:`store_layout`) from its
+    ``fields.npz`` arrays, so every field of a finished subject is written: NaN confidence
+    when the map gave none, a shorter spectrum padded with NaN."""
+    values = {name: fields[name] for name in STORE_FIELDS if name in fields}
+    values.setdefault("match_confidence", np.full(layout["match_confidence"], np.nan))
+    spectrum = np.full(layout["laplace_spectrum"], np.nan)
+    given = np.asarray(values["laplace_spectrum"], dtype=np.float64).ravel()[:spectrum.size]
+    spectrum[:given.size] = given
+    values["laplace_spectrum"] = spectrum
+    return values
+
+
 def write_subject(task: SubjectTask, subject: Surface, fields: dict, scalars: dict) -> None:
-    """Write fields (NPZ, exact), the prepared mesh and the fields on the template (PLY),
-    the row and, last, the completion marker."""
+    """Write fields (NPZ, exact; and the subject's row of the cohort field store), the
+    prepared mesh and the fields on the template (PLY), the row and, last, the completion
+    marker."""
     out = Path(task.subject_dir)
     save_fields(out / "fields.npz", **fields)
+    if task.field_store:
+        store = open_field_store(task.field_store, writable=True)
+        store.write_subject(task.index, store_values(fields, store.fields))
     save(subject, out / "prepared.ply")
     template = load_template(task)[0]
     # the change fields as vertex properties of the template mesh, for viewers
@@ -269,6 +301,8 @@ def run_subject(task: SubjectTask) -> dict:
         out.mkdir(parents=True, exist_ok=True)
         for stale in out.glob(f"*{MARKER_SUFFIX}"):
             stale.unlink()
+        if task.field_store:  # its row is invalid until this run writes it again
+            open_field_store(task.field_store, writable=True).clear_subject(task.index)
         with threadpool_limits(limits=1):
             subject, fields, scalars = _compute(task, timings)
             with _timed(timings, "write"):

@@ -4,7 +4,8 @@
                         error, and the subject's scalars (``%.6g`` text of
                         :func:`surfacekit.io.tables.format_value`).
 ``cohort_fields.npz``   per-template-vertex matrices (subjects x template vertices),
-                        NaN rows for failed subjects, streamed row by row to disk.
+                        NaN rows for failed subjects, exported row by row from the
+                        cohort's field store (:mod:`surfacekit.cohort.store`).
 ``group_test.csv``      vertex-wise two-group test of the normal displacement
                         (seeded permutations) when exactly two groups exist; the first
                         group in manifest order is the reference: column
@@ -24,6 +25,7 @@ from ..io.files import atomic_path
 from ..io.npz import npz_member
 from ..io.tables import write_csv, write_json
 from .manifest import Manifest
+from .store import FieldStore
 from .subject import CHANGE_COLUMNS
 
 SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2",
@@ -54,38 +56,31 @@ def write_summary(path, manifest: Manifest, rows: list[dict]) -> Path:
     return write_csv(path, table, columns=header)
 
 
-def write_fields_matrix(path, manifest: Manifest, rows: list[dict], subject_dirs: list[Path],
-                        n_template: int, n_eigenvalues: int) -> Path:
-    """``cohort_fields.npz``: (s, n_template) float64 matrices in manifest order.
+def write_fields_matrix(path, manifest: Manifest, rows: list[dict], store: FieldStore) -> Path:
+    """``cohort_fields.npz``: (s, n_template) float64 matrices in manifest order, from the store.
 
     Each matrix is streamed one subject row at a time, so memory stays at one
     row however large the cohort.  Also stores ``subjects``, ``groups``, ``ok`` (s,)
     and ``laplace_spectrum`` (s, k).  Fixed zip time stamps make the file byte-reproducible.
     """
     s = len(manifest.subjects)
-    ok = np.array([r["status"] == "ok" for r in rows])
+    ok = np.array([r["status"] == "ok" for r in rows]) & store.written()
     names = {"subjects": np.array([e.subject for e in manifest.subjects]),
              "groups": np.array([e.group for e in manifest.subjects]), "ok": ok}
-    columns = {f: (n_template,) for f in VERTEX_FIELDS}
-    columns["laplace_spectrum"] = (n_eigenvalues,)
     with atomic_path(Path(path), suffix=".npz") as tmp, \
             zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
         for name, arr in names.items():
             with npz_member(zf, name) as fh:
                 np.lib.format.write_array(fh, arr, allow_pickle=False)
-        for name, shape in columns.items():
+        for name in (*VERTEX_FIELDS, "laplace_spectrum"):
+            shape = store.fields[name]
             header = {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float64)),
                       "fortran_order": False, "shape": (s, *shape)}
             with npz_member(zf, name) as fh:
                 np.lib.format.write_array_header_1_0(fh, header)
-                for good, sdir in zip(ok, subject_dirs):
-                    row = np.full(shape, np.nan)
-                    if good:
-                        with np.load(sdir / "fields.npz", allow_pickle=False) as data:
-                            values = np.asarray(data[name], dtype=np.float64).ravel()
-                        m = min(values.size, row.size)
-                        row[:m] = values[:m]
-                    fh.write(row.tobytes())
+                for i, good in enumerate(ok):
+                    row = store.read(name, i) if good else np.full(shape, np.nan)
+                    fh.write(np.ascontiguousarray(row, dtype=np.float64).tobytes())
     return Path(path)
 
 
@@ -155,7 +150,24 @@ def _fit(a, b, entries, n_permutations: int, seed: int):
     return res, used, dropped
 
 
-def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
+def _field_rows(fields, manifest: Manifest, rows: list[dict]):
+    """(rows of the normal displacement for a subject mask, ok mask, groups) from a field
+    store (lazy Dask rows) or from a ``cohort_fields.npz`` file."""
+    if isinstance(fields, FieldStore):
+        ok = np.array([r["status"] == "ok" for r in rows]) & fields.written("normal_displacement")
+        groups = np.array([e.group for e in manifest.subjects])
+        return (lambda mask: fields.dask("normal_displacement", mask)), ok, groups
+    with np.load(fields, allow_pickle=False) as data:
+        nd, ok, groups = data["normal_displacement"], data["ok"], data["groups"]
+    return (lambda mask: nd[mask]), ok, groups
+
+
+def _column_mean(x) -> np.ndarray:
+    mean = x.mean(axis=0)
+    return np.asarray(mean.compute() if hasattr(mean, "compute") else mean, dtype=np.float64)
+
+
+def write_group_test(path, manifest: Manifest, rows: list[dict], fields,
                      *, n_permutations: int, seed: int) -> tuple[Path, dict] | None:
     """``group_test.csv`` (per template vertex: group means, t, p-values, FDR q-values) and
     ``group_test.json`` beside it (groups, contrast, covariates used and dropped).
@@ -166,20 +178,21 @@ def write_group_test(path, manifest: Manifest, rows: list[dict], fields_file,
     if they make the design rank deficient the test runs without them and says so.
     Sign convention: the first group in manifest order is the reference, the t column
     is ``t_<second>_minus_<first>`` (t > 0 where the second group lies further outward).
+    `fields` is the cohort's :class:`~surfacekit.cohort.store.FieldStore` (read chunk by
+    chunk through Dask) or a ``cohort_fields.npz`` file.
     Returns ``(csv path, info)``, or None (and writes nothing) without exactly two groups.
     """
     pair = two_groups(manifest, rows)
     if pair is None:
         return None
-    with np.load(fields_file, allow_pickle=False) as data:
-        nd, ok, groups = data["normal_displacement"], data["ok"], data["groups"]
+    nd, ok, groups = _field_rows(fields, manifest, rows)
     ref, other = pair
     in_ref, in_other = ok & (groups == ref), ok & (groups == other)
     entries = ([e for e, m in zip(manifest.subjects, in_other) if m]
                + [e for e, m in zip(manifest.subjects, in_ref) if m])
-    res, used, dropped = _fit(nd[in_other], nd[in_ref], entries, n_permutations, seed)
+    res, used, dropped = _fit(nd(in_other), nd(in_ref), entries, n_permutations, seed)
     t_name = f"t_{other}_minus_{ref}"
-    columns = [nd[in_ref].mean(axis=0), nd[in_other].mean(axis=0)] + [
+    columns = [_column_mean(nd(in_ref)), _column_mean(nd(in_other))] + [
         np.asarray(getattr(res, name), dtype=np.float64)
         for name in ("t", "p_uncorrected", "p_fwer", "q_fdr")]
     header = ["vertex", f"mean_{ref}_outward_mm", f"mean_{other}_outward_mm", t_name, "p_uncorrected",
