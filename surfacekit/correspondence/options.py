@@ -75,6 +75,13 @@ class MatchOptions:
         do not fix the rotation.
     max_turns : int, default 3
         Most turned poses adopted after the probe.
+    partial : {"auto", "yes", "no"}, default "auto"
+        Whether one surface may cover only part of the other (a cropped scan).
+        "auto": when exactly one surface is open and one of its boundary loops is
+        a cut (near-planar, not small), map that part into the whole
+        (:mod:`.partial`); closed pairs always take the whole-to-whole route.
+        "yes": treat the open (or else the smaller) surface as the part.  "no":
+        never.
     """
 
     n_eigen: int = 60
@@ -98,6 +105,7 @@ class MatchOptions:
     landmark_weight: float = 0.25
     check_ambiguity: bool = True
     max_turns: int = 3
+    partial: str = "auto"
 
     def __post_init__(self):
         # frozen: normalise the landmark pairs once, so the options hash, compare and save alike
@@ -129,6 +137,8 @@ class MatchOptions:
             raise ValueError(f"landmark_weight must be >= 0, got {self.landmark_weight}")
         if self.same_orientation not in (None, True, False):
             raise ValueError(f"same_orientation must be None, True or False, got {self.same_orientation!r}")
+        if self.partial not in ("auto", "yes", "no"):
+            raise ValueError(f"partial must be 'auto', 'yes' or 'no', got {self.partial!r}")
         if any(a < 0 or b < 0 for a, b in self.landmarks):
             raise ValueError("landmarks must be non-negative vertex indices")
         return self

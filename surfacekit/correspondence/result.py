@@ -51,6 +51,15 @@ def _check_array(name: str, a, shape: tuple) -> np.ndarray | None:
     return a
 
 
+def _check_overlap(name: str, mask, n: int) -> np.ndarray:
+    if mask is None:
+        return np.ones(n, dtype=bool)
+    m = np.asarray(mask)
+    if m.shape != (n,):
+        raise ValueError(f"{name} must have shape ({n},), got {m.shape}")
+    return m.astype(bool)
+
+
 def _transform_arrays(name: str, t: Transform | None) -> dict:
     """NPZ entries of a Transform, each under ``<name>_<field>``."""
     if t is None:
@@ -110,7 +119,15 @@ class Correspondence:
     seed : int or None
         The seed `match` ran with.
     info : dict
-        JSON-able diagnostics (route chosen, energies, timings).
+        JSON-able diagnostics (route chosen, energies, timings; ``info["partial"]`` when
+        one surface was mapped as a part of the other).
+    source_overlap : (n_source,) bool
+        Source vertices in the region both surfaces cover: all True unless the target
+        is a part of the source (a cropped follow-up), where the vertices beyond the
+        crop are False.  Their ``source_to_target`` entries point to the nearest
+        target vertex but match nothing.
+    target_overlap : (n_target,) bool
+        The same over the target's vertices (False beyond a cropped source).
 
     The transforms, options and seed are None for correspondences not made by
     ``sk.match`` (and in files saved before they were kept).
@@ -135,6 +152,8 @@ class Correspondence:
     options: MatchOptions | None = None
     seed: int | None = None
     info: dict = field(default_factory=dict)
+    source_overlap: np.ndarray | None = None
+    target_overlap: np.ndarray | None = None
 
     def __post_init__(self):
         self.source_to_target = _check_map("source_to_target", self.source_to_target)
@@ -160,6 +179,13 @@ class Correspondence:
             raise ValueError(f"options must be a MatchOptions or None, got {type(self.options).__name__}")
         self.seed = None if self.seed is None else int(self.seed)
         self.info = dict(self.info or {})
+        self.source_overlap = _check_overlap("source_overlap", self.source_overlap, n_s)
+        self.target_overlap = _check_overlap("target_overlap", self.target_overlap, n_t)
+
+    @property
+    def is_partial(self) -> bool:
+        """True when one surface covers only part of the other (an overlap mask is not all True)."""
+        return not (self.source_overlap.all() and self.target_overlap.all())
 
     @property
     def n_source(self) -> int:
@@ -219,6 +245,9 @@ class Correspondence:
             arrays["options_json"] = np.array(json.dumps(self.options.to_dict()))
         if self.seed is not None:
             arrays["seed"] = np.int64(self.seed)
+        if self.is_partial:  # whole-to-whole files stay as they were
+            arrays["source_overlap"] = self.source_overlap
+            arrays["target_overlap"] = self.target_overlap
         return save_fields(path, **arrays)
 
     @classmethod
@@ -244,6 +273,8 @@ class Correspondence:
             options=json.loads(str(d["options_json"])) if "options_json" in d else None,
             seed=int(d["seed"]) if "seed" in d else None,
             info=json.loads(str(d["info_json"])),
+            source_overlap=d.get("source_overlap"),
+            target_overlap=d.get("target_overlap"),
         )
 
     # ------------------------------------------------------------ landmarks

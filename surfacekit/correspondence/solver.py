@@ -18,10 +18,12 @@ from .candidates import (
     refine,
 )
 from .options import MatchOptions
+from .partial import detect_partial, match_partial
 from .pose import affine_mm, deformation_mm, rigid_pose, similarity_mm
 from .result import Correspondence
 from .settle import rival, settle
 from .shapes import ShapeState, checked_options, prepare_shape
+from .tubes import tube_route
 from .zoomout import nearest_rows, nearest_rows_local
 
 log = logging.getLogger("surfacekit")
@@ -70,6 +72,30 @@ def confidence(points: np.ndarray, roundtrip: np.ndarray) -> np.ndarray:
     return np.exp(-((d / tuning.CONFIDENCE_WIDTH) ** 2))
 
 
+def search(src: ShapeState, tgt: ShapeState, opts: MatchOptions, seed: int, clock=None) -> tuple:
+    """The candidate search: start candidates, coarse ZoomOut, the best `opts.n_finalists` refined
+    to full size, the lowest energy wins and is settled (:func:`~.settle.settle`).  Returns
+    ``(chosen, found)`` with `found` the JSON-able record of energies and the rotation verdict."""
+    lap = clock.lap if clock is not None else (lambda name: None)
+    ks_coarse, ks_fine = zoomout_sizes(opts)
+    coarse = [refine(src, tgt, c, ks_coarse, opts) for c in start_candidates(src, tgt, opts, seed)]
+    coarse_e = [energy(src, tgt, c)["total"] for c in coarse]
+    lap("coarse")
+    finalists = [refine(src, tgt, coarse[i], ks_fine, opts) for i in np.argsort(coarse_e)[: opts.n_finalists]]
+    energies = [energy(src, tgt, c) for c in finalists]
+    best = int(np.argmin([e["total"] for e in energies]))
+    lap("fine")
+    chosen, ambiguity = settle(src, tgt, finalists[best], opts, ks_coarse, ks_fine,
+                               rival(finalists, [e["total"] for e in energies], best))
+    lap("turn_probe")
+    return chosen, {
+        "coarse_energies": [float(e) for e in coarse_e],
+        "candidates": [{"route": c.route, **e} for c, e in zip(finalists, energies)],
+        "chosen": best,
+        "rotation_ambiguity": ambiguity,
+    }
+
+
 class _Clock:
     """Seconds spent in each named stage, in order."""
 
@@ -108,6 +134,12 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     such a map.  The result is extended to all vertices, and the rigid pose of
     the final map is fitted once, robust to a changing region (:func:`~.pose.rigid_pose`).
 
+    When one surface covers only part of the other (a cropped scan: exactly one
+    surface is open along a near-planar cut; ``MatchOptions.partial`` forces this on
+    or off), the part is mapped into the whole instead (:mod:`.partial`): every
+    vertex of the part gets a partner, and ``source_overlap`` / ``target_overlap``
+    mark the region of the whole that the part covers.
+
     Parameters
     ----------
     source, target : Surface
@@ -128,20 +160,22 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     """
     opts = checked_options(source, target, options)
     clock = _Clock()
+    found = detect_partial(source, target, opts.partial)
+    if found is not None:  # one surface is a cropped part of the other
+        with threadpool_limits(1, user_api="blas"):
+            fields = match_partial(source, target, opts, seed, found)
+        clock.lap("partial")
+        fields["info"].update(timings_s=clock.timings, options=opts.to_dict(), seed=int(seed))
+        return Correspondence(**fields, options=opts, seed=int(seed))
     with threadpool_limits(1, user_api="blas"):  # small matrices: threads only add contention
         src, tgt = prepare_shape(source, opts, seed, 0), prepare_shape(target, opts, seed + 1, 1)
         clock.lap("prepare")
-        ks_coarse, ks_fine = zoomout_sizes(opts)
-        coarse = [refine(src, tgt, c, ks_coarse, opts) for c in start_candidates(src, tgt, opts, seed)]
-        coarse_e = [energy(src, tgt, c)["total"] for c in coarse]
-        clock.lap("coarse")
-        finalists = [refine(src, tgt, coarse[i], ks_fine, opts) for i in np.argsort(coarse_e)[: opts.n_finalists]]
-        energies = [energy(src, tgt, c) for c in finalists]
-        best = int(np.argmin([e["total"] for e in energies]))
-        clock.lap("fine")
-        chosen, ambiguity = settle(src, tgt, finalists[best], opts, ks_coarse, ks_fine,
-                                   rival(finalists, [e["total"] for e in energies], best))
-        clock.lap("turn_probe")
+        chosen, found = search(src, tgt, opts, seed, clock)
+        posed = (src, tgt, chosen)  # the states and candidate whose transforms the result reports
+        tube = tube_route(src, tgt, chosen, found, opts, seed, search)
+        if tube is not None:  # a strongly bent tube, matched after straightening both
+            (src, tgt, chosen), posed, found = tube
+        clock.lap("tube")
         t2s, s2t = extend(src, tgt, chosen, opts)
         # the reported functional map: from the final full-resolution map, M-weighted
         # (C = Φ_tᵀ M_t Π Φ_s, Ovsjanikov et al. 2012), in the unit-area bases
@@ -152,10 +186,7 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     clock.timings["total"] = clock.last - clock.start
     info = {
         "route": chosen.route,
-        "coarse_energies": [float(e) for e in coarse_e],
-        "candidates": [{"route": c.route, **e} for c, e in zip(finalists, energies)],
-        "chosen": best,
-        "rotation_ambiguity": ambiguity,
+        **found,
         "rigid_pose_rounds": rounds,
         "timings_s": clock.timings,
         "options": opts.to_dict(),
@@ -164,6 +195,6 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
     return Correspondence(
         source_to_target=s2t, target_to_source=t2s, functional_map=C,
         confidence=confidence(tgt.points, s2t[t2s]), source_confidence=source_confidence,
-        similarity=similarity_mm(src, tgt, chosen.pose), affine=affine_mm(src, tgt, chosen),
-        deformation=deformation_mm(src, tgt, chosen), rigid=rigid, options=opts, seed=int(seed),
+        similarity=similarity_mm(posed[0], posed[1], posed[2].pose), affine=affine_mm(*posed),
+        deformation=deformation_mm(*posed), rigid=rigid, options=opts, seed=int(seed),
         info=info)
