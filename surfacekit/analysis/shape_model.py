@@ -1,7 +1,10 @@
 """Cohort shape statistics on corresponded surfaces: Procrustes alignment and PCA shape models.
 
 Shapes are (s, n, 3) arrays: s subjects, n corresponding vertices (mm), e.g.
-``subject.vertices[corr.source_to_target]`` for a template -> subject map.
+``subject.vertices[corr.source_to_target]`` for a template -> subject map; or chunked
+arrays of that shape (a Dask array such as a cohort field store's ``shapes``), which
+are read a block of subjects or of coordinates at a time (:mod:`.chunked`), so memory
+does not grow with the number of subjects.
 For research use only; not for diagnosis or treatment decisions.
 """
 from __future__ import annotations
@@ -11,18 +14,37 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..correspondence.alignment import Transform, weighted_umeyama
+from .chunked import column_width, is_chunked, loaded, rows_of
+
+CHUNKED_MAX_MODES = 100  # modes kept by default from chunked shapes (each is 3n float64 values)
 
 
-def _check_shapes(shapes, min_subjects: int = 2) -> np.ndarray:
-    x = np.asarray(shapes, dtype=np.float64)
-    if x.ndim != 3 or x.shape[2] != 3:
-        raise ValueError(f"shapes must have shape (subjects, vertices, 3), got {np.shape(shapes)}")
+def _check_shapes(shapes, min_subjects: int = 2):
+    """The shapes as float64 numpy (checked now) or chunked (rows checked as they are read)."""
+    x = shapes if is_chunked(shapes) else np.asarray(shapes, dtype=np.float64)
+    if len(x.shape) != 3 or x.shape[2] != 3:
+        raise ValueError(f"shapes must have shape (subjects, vertices, 3), got {tuple(x.shape)}")
     if x.shape[0] < min_subjects or x.shape[1] < 3:
         raise ValueError(f"need at least {min_subjects} shapes of at least 3 vertices, "
                          f"got {x.shape[0]} shapes of {x.shape[1]}")
-    if not np.all(np.isfinite(x)):
+    if not is_chunked(x) and not np.all(np.isfinite(x)):
         raise ValueError("shapes contain NaN or infinite coordinates")
     return x
+
+
+def _rows(x):
+    """(i, shape i) for every subject; rows of chunked shapes are checked for finiteness."""
+    for i, row in rows_of(x):
+        if is_chunked(x) and not np.all(np.isfinite(row)):
+            raise ValueError(f"shape {i} contains NaN or infinite coordinates")
+        yield i, row
+
+
+def _apply_transforms(block, transforms, block_info=None):
+    """A block of subjects moved by their transforms (for Dask's ``map_blocks``)."""
+    start = block_info[0]["array-location"][0][0]
+    rows = np.asarray(block, dtype=np.float64)
+    return np.stack([transforms[start + j].apply(row) for j, row in enumerate(rows)])
 
 
 @dataclass
@@ -57,7 +79,9 @@ def generalized_procrustes(shapes, *, scaling: bool = True, weights: np.ndarray 
 
     Parameters
     ----------
-    shapes : (s, n, 3) corresponded vertex coordinates (mm), s >= 2
+    shapes : (s, n, 3) corresponded vertex coordinates (mm), s >= 2; a chunked array is
+        read a block of subjects at a time in each iteration, and `aligned` is then a
+        lazy Dask array
     scaling : remove size as well as pose (default) — size is then reported in
         `centroid_sizes`; with False only rotation and translation are removed
     weights : (n,) non-negative vertex weights (e.g. template vertex areas), optional
@@ -73,23 +97,31 @@ def generalized_procrustes(shapes, *, scaling: bool = True, weights: np.ndarray 
     if w.shape != (n,) or np.any(w < 0) or not w.sum() > 0:
         raise ValueError(f"weights must be (n={n},) non-negative with a positive sum")
     wn = w / w.sum()
-    centroids = np.einsum("j,ijk->ik", wn, x)
-    centred = x - centroids[:, None, :]
-    sizes = np.sqrt(np.einsum("ijk,ijk->i", centred, centred))
+    centroids, sizes = np.empty((s, 3)), np.empty(s)
+    for i, row in _rows(x):  # one pass; chunked shapes are read again in each iteration
+        centroids[i] = np.einsum("j,jk->k", wn, row)
+        centred = row - centroids[i]
+        sizes[i] = np.sqrt(np.einsum("jk,jk->", centred, centred))
     if np.any(sizes <= 0):
         raise ValueError("a shape has all its vertices at one point")
-    unit = centred / sizes[:, None, None] if scaling else centred / sizes.mean()
+    scale = sizes if scaling else np.full(s, sizes.mean())
+
+    def units():
+        for i, row in _rows(x):
+            yield i, (row - centroids[i]) / scale[i]
 
     def size(a):
         return float(np.sqrt(np.sum(a * a)))
 
-    mean = unit[0].copy()
+    mean = next(units())[1].copy()
     converged, it = False, 0
     fits = [(np.eye(3), np.zeros(3), 1.0)] * s
     for it in range(1, max_iter + 1):
-        fits = [weighted_umeyama(unit[i], mean, w, scaling=scaling) for i in range(s)]
-        moved = np.stack([f[2] * unit[i] @ f[0].T + f[1] for i, f in enumerate(fits)])
-        new_mean = moved.mean(axis=0)
+        new_mean = np.zeros((n, 3))
+        for i, unit in units():
+            fits[i] = f = weighted_umeyama(unit, mean, w, scaling=scaling)
+            new_mean += f[2] * unit @ f[0].T + f[1]
+        new_mean /= s
         new_mean -= wn @ new_mean
         if scaling:
             new_mean /= size(new_mean)
@@ -98,15 +130,18 @@ def generalized_procrustes(shapes, *, scaling: bool = True, weights: np.ndarray 
         if delta < tol:
             converged = True
             break
-    fits = [weighted_umeyama(unit[i], mean, w, scaling=scaling) for i in range(s)]
+    fits = [weighted_umeyama(unit, mean, w, scaling=scaling) for _, unit in units()]
     # Back to mm: the common frame is scaled by the mean input size.
     unit_to_mm = sizes.mean()
-    transforms, aligned = [], np.empty_like(x)
+    transforms = []
     for i, (rot, t, sc) in enumerate(fits):
-        total_scale = (sc / sizes[i] if scaling else sc / sizes.mean()) * unit_to_mm
+        total_scale = sc / scale[i] * unit_to_mm
         trans = unit_to_mm * t - total_scale * rot @ centroids[i]
         transforms.append(Transform(rot, trans, float(total_scale)))
-        aligned[i] = transforms[i].apply(x[i])
+    if is_chunked(x):  # aligned lazily, subject by subject
+        aligned = x.map_blocks(_apply_transforms, transforms, dtype=np.float64)
+    else:
+        aligned = np.stack([t.apply(x[i]) for i, t in enumerate(transforms)])
     return ProcrustesResult(aligned, mean * unit_to_mm, transforms, sizes, it, converged)
 
 
@@ -232,8 +267,12 @@ def shape_model(shapes, *, n_modes: int | None = None, align: bool = True,
 
     Parameters
     ----------
-    shapes : (s, n, 3) corresponded vertex coordinates (mm)
-    n_modes : modes kept (default: all, at most s - 1)
+    shapes : (s, n, 3) corresponded vertex coordinates (mm), or a chunked array of them
+        (e.g. a cohort field store's ``shapes(template.vertices)``): then the Gram matrix
+        and the modes are accumulated over blocks of coordinates, memory ~ s² + k·3n
+        values, and `training` stays a lazy Dask array
+    n_modes : modes kept (default: all, at most s - 1; from chunked shapes at most
+        :data:`CHUNKED_MAX_MODES`)
     align : remove pose first by :func:`generalized_procrustes`
     scaling : with `align`, also remove size (then the model describes shape only)
 
@@ -245,13 +284,37 @@ def shape_model(shapes, *, n_modes: int | None = None, align: bool = True,
     if align:
         x = generalized_procrustes(x, scaling=scaling).aligned
     s, n, _ = x.shape
-    mean = x.mean(axis=0)
-    k_max = s - 1
+    k_max = s - 1 if n_modes is not None or not is_chunked(x) else min(s - 1, CHUNKED_MAX_MODES)
     k = k_max if n_modes is None else min(int(n_modes), k_max)
     if k < 1:
         raise ValueError(f"n_modes must be >= 1, got {n_modes}")
-    variances, modes = _pca((x - mean).reshape(s, -1), k)
+    if not is_chunked(x):
+        mean = x.mean(axis=0)
+        variances, modes = _pca((x - mean).reshape(s, -1), k)
+        return ShapeModel(mean, modes.reshape(k, n, 3), variances, x)
+    mean = np.zeros((n, 3))
+    for _, row in _rows(x):
+        mean += row
+    mean /= s
+    centred = (x - mean).reshape(s, 3 * n)
+    width = column_width(s)
+    gram = np.zeros((s, s))
+    for c0 in range(0, 3 * n, width):
+        block = loaded(centred[:, c0:c0 + width])
+        gram += block @ block.T
+    evals, vecs = _top_eigen(gram, k)
+    modes = np.empty((k, 3 * n))
+    for c0 in range(0, 3 * n, width):
+        modes[:, c0:c0 + width] = vecs.T @ loaded(centred[:, c0:c0 + width])
+    variances, modes = _unit_modes(modes, evals, s)
     return ShapeModel(mean, modes.reshape(k, n, 3), variances, x)
+
+
+def _top_eigen(gram: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The k largest eigenvalues (clipped at 0) of a Gram matrix and their eigenvectors."""
+    evals, evecs = np.linalg.eigh(gram)
+    order = np.argsort(evals)[::-1][:k]
+    return np.maximum(evals[order], 0.0), evecs[:, order]
 
 
 def _pca(centred: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
@@ -260,16 +323,16 @@ def _pca(centred: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     Through the (s, s) Gram matrix (the "snapshot" form; Sirovich, Q. Appl. Math.
     1987): its eigenvectors V give the modes ``Dᵀ V / sqrt(eigenvalue)``.
     """
-    s = centred.shape[0]
-    gram = centred @ centred.T
-    evals, evecs = np.linalg.eigh(gram)
-    order = np.argsort(evals)[::-1][:k]
-    evals = np.maximum(evals[order], 0.0)
-    modes = (centred.T @ evecs[:, order]).T
+    evals, vecs = _top_eigen(centred @ centred.T, k)
+    return _unit_modes((centred.T @ vecs).T, evals, centred.shape[0])
+
+
+def _unit_modes(modes: np.ndarray, evals: np.ndarray, s: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sample variances and the modes ``Dᵀ V`` scaled to unit norm, each with a fixed sign."""
     norms = np.linalg.norm(modes, axis=1)
     modes = np.divide(modes, norms[:, None], out=np.zeros_like(modes), where=norms[:, None] > 0)
     # deterministic sign: the largest-magnitude coordinate of each mode is positive
-    signs = np.sign(modes[np.arange(len(order)), np.abs(modes).argmax(axis=1)])
+    signs = np.sign(modes[np.arange(len(modes)), np.abs(modes).argmax(axis=1)])
     modes = modes * np.where(signs == 0, 1.0, signs)[:, None]
     return evals / (s - 1), modes
 

@@ -11,6 +11,7 @@ import numpy as np
 from scipy.stats import false_discovery_control
 
 from ..io.tables import RESEARCH_NOTE
+from .chunked import column_width, is_chunked, loaded
 
 
 @dataclass
@@ -107,14 +108,9 @@ def _covariate_matrix(covariates, n: int) -> np.ndarray:
     return c
 
 
-def _is_lazy(x) -> bool:
-    """Chunked arrays read block by block (Dask, Zarr, HDF5 datasets): they have ``.chunks``."""
-    return hasattr(x, "chunks") and hasattr(x, "shape") and not isinstance(x, np.ndarray)
-
-
 def _group_input(x, name: str):
     """A numpy (n, v) matrix checked at once, or a chunked (n, v) array checked block by block."""
-    if not _is_lazy(x):
+    if not is_chunked(x):
         return _as_matrix(x, name)
     if len(x.shape) != 2:
         raise ValueError(f"{name} must have shape (subjects, vertices), got {tuple(x.shape)}")
@@ -123,10 +119,7 @@ def _group_input(x, name: str):
 
 def _columns(x, start: int, stop: int, name: str) -> np.ndarray:
     """Columns start:stop of a group as float64, computed now when `x` is chunked."""
-    block = x[:, start:stop]
-    if hasattr(block, "compute"):
-        block = block.compute()
-    return _as_matrix(block, name)
+    return _as_matrix(loaded(x[:, start:stop]), name)
 
 
 def _permutations(rng, n_permutations: int, n: int, chunk: int) -> np.ndarray:
@@ -141,12 +134,12 @@ def _permutations(rng, n_permutations: int, n: int, chunk: int) -> np.ndarray:
 
 def _vertex_block(n: int, p: int, chunk_size: int, n_vertices: int, vertex_block) -> int:
     """Vertices per block: the block of data (n rows) and of permuted projections
-    (chunk_size·p rows) each hold at most ~32 MB, whatever the number of vertices."""
+    (chunk_size·(p+1) rows) each hold at most ~32 MB, whatever the number of vertices."""
     if vertex_block is not None:
         if int(vertex_block) < 1:
             raise ValueError(f"vertex_block must be >= 1, got {vertex_block}")
         return min(int(vertex_block), n_vertices)
-    return max(1, min(n_vertices, (32 << 20) // (8 * max(n, chunk_size * (p + 1)))))
+    return min(n_vertices, column_width(max(n, chunk_size * (p + 1))))
 
 
 def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: int = 0,
