@@ -44,7 +44,8 @@ _PUBLIC = {
         "generalized_procrustes", "ShapeModel", "shape_model", "vertexwise_group_test",
         "GroupTestResult", "spectral_distances",
     ),
-    "cohort": ("run_cohort", "CohortFailedError", "UnguardedScriptError"),
+    "cohort": ("run_cohort", "CohortFailedError", "UnguardedScriptError", "open_field_store",
+               "FieldStore"),
     "app.report": ("write_report",),
 }
 # public name -> module that defines it
@@ -68,6 +69,7 @@ __all__ = [
     "Correspondence",
     "EigenSolverWarning",
     "Eigenbasis",
+    "FieldStore",
     "GeodesicSolver",
     "GroupTestResult",
     "MatchOptions",
@@ -102,6 +104,7 @@ __all__ = [
     "match",
     "mean_curvature",
     "measure_change",
+    "open_field_store",
     "patch_descriptors",
     "point_cloud_laplacian",
     "prepare",
