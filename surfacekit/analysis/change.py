@@ -10,10 +10,11 @@ from pathlib import Path
 
 import numpy as np
 
+from ..correspondence.closest import closest_near
 from ..correspondence.result import Correspondence
 from ..io.tables import RESEARCH_NOTE, json_default, write_csv
 from ..mesh.laplacian import face_to_vertex_mean
-from ..mesh.proximity import near_faces, outward_vertex_normals, project_pairs
+from ..mesh.proximity import outward_vertex_normals, ring_faces
 from ..mesh.surface import Surface, SurfaceError
 from . import geometry as geo
 from .components import boundary_band, open_note
@@ -200,12 +201,13 @@ def _check_labels(labels, n: int) -> np.ndarray | None:
     return lab.astype(np.int64)
 
 
-def _mapped_points(baseline: Surface, moved: np.ndarray, faces: np.ndarray, s2t: np.ndarray,
-                   pairs, sigma: float) -> np.ndarray:
-    """(n, 3) sub-vertex mapped points of the baseline vertices on the aligned follow-up."""
-    raw = moved[s2t] - baseline.vertices
-    smooth = geo.heat_smooth(baseline, raw, sigma)
-    return project_pairs(baseline.vertices + smooth, moved, faces, pairs)
+def _mapped_points(baseline: Surface, followup: Surface, moved: np.ndarray, s2t: np.ndarray,
+                   rings: int, sigma: float) -> np.ndarray:
+    """(n, 3) sub-vertex mapped points of the baseline vertices on the aligned follow-up
+    (`moved`: the follow-up vertices in the baseline frame)."""
+    smooth = geo.heat_smooth(baseline, moved[s2t] - baseline.vertices, sigma)
+    return closest_near(baseline.vertices + smooth, moved, followup.faces,
+                        ring_faces(followup, rings), s2t)[0]
 
 
 def _check_correspondence(baseline: Surface, followup: Surface, corr) -> np.ndarray:
@@ -340,8 +342,7 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
     pose = corr.rigid.inverse()  # 1. follow-up -> baseline frame
     moved = pose.apply(followup.vertices)
     sigma = 2.0 * baseline.mean_edge_length if smoothing is None else float(smoothing)
-    pairs = near_faces(followup, s2t, rings)
-    mapped = _mapped_points(baseline, moved, followup.faces, s2t, pairs, sigma)  # 2.
+    mapped = _mapped_points(baseline, followup, moved, s2t, rings, sigma)  # 2.
     displacement = mapped - baseline.vertices
     normals = outward_vertex_normals(baseline)  # 3.
     normal_displacement = np.einsum("ij,ij->i", displacement, normals)

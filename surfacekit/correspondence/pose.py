@@ -10,11 +10,12 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from ..mesh.proximity import closest_on_faces, near_faces, nearest_corner, outward_vertex_normals
+from ..mesh.proximity import nearest_corner, outward_vertex_normals, ring_faces
 from ..mesh.surface import Surface
 from . import tuning
 from .alignment import MAD_TO_SD, TUKEY_C, Transform, rigid_transform
 from .candidates import Candidate
+from .closest import closest_near
 from .shapes import ShapeState
 
 
@@ -85,13 +86,15 @@ def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
     if not weights.sum() > 0:
         weights = np.ones(len(x))
     to_source = rigid_transform(target.vertices[source_to_target], x, weights=weights)
-    pairs = near_faces(target, source_to_target, rings)
+    near = ring_faces(target, rings)  # candidate faces per seed vertex, built once
+    follow_near = near if follow_rings == rings else ring_faces(target, follow_rings)
+    seeds = source_to_target
     normals = outward_vertex_normals(source)
     w, rms, used = to_source.weights, to_source.rms, 0
     earlier = [to_source]  # the poses one and two rounds back
     for used in range(1, rounds + 1):
-        foot, face = closest_on_faces(to_source.inverse().apply(x), target.vertices, target.faces, pairs)
-        pairs = near_faces(target, nearest_corner(foot, target.vertices, target.faces, face), follow_rings)
+        foot, face = closest_near(to_source.inverse().apply(x), target.vertices, target.faces, near, seeds)
+        near, seeds = follow_near, nearest_corner(foot, target.vertices, target.faces, face)
         step, w, rms = plane_step(x, to_source.apply(foot), normals, weights, tol_mm)
         to_source = to_source.then(step)
         # settled, or alternating between two sets of closest points (back where it was)
