@@ -16,8 +16,16 @@ import scipy.sparse.linalg as spla
 from cholespy import CholeskySolverD, MatrixType
 from threadpoolctl import threadpool_limits
 
+from .eigen_block import BlockSolverNoConvergence, block_eigensolve
 from .laplacian import laplacian, laplacian_method
 from .surface import Surface, SurfaceError
+
+#: smallest vertex count for which ``solver="auto"`` uses the block Krylov–Schur solver
+#: (:mod:`.eigen_block`) instead of ARPACK; below it ARPACK on the same factorisation is
+#: as fast, and every result computed so far on such meshes stays bit-for-bit the same.
+BLOCK_MIN_VERTICES = 8000
+#: restart cap of the block solver before the ARPACK fallback
+BLOCK_MAX_RESTARTS = 40
 
 
 class EigenSolverWarning(UserWarning):
@@ -117,13 +125,30 @@ def _cholesky_solve(A: sp.spmatrix):
 def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
                      ) -> tuple[np.ndarray, np.ndarray, str]:
     """One eigen-solve: the k smallest ``(values (k,), vectors (n, k), solver used)`` of
-    ``L φ = λ M φ`` for a diagonal M, unsorted and unnormalised (see :func:`eigenbasis`)."""
+    ``L φ = λ M φ`` for a diagonal M, unsorted and unnormalised (see :func:`eigenbasis`).
+
+    The rule for ``solver="auto"``: dense LAPACK for n <= 1200; ARPACK on a CHOLMOD
+    factorisation of ``L − σM`` for n < :data:`BLOCK_MIN_VERTICES`; above that the block
+    Krylov–Schur solver on the same factorisation (``"block"``), and if it misses its
+    tolerance within its restart cap, ARPACK with an :class:`EigenSolverWarning`.
+    """
     n = L.shape[0]
     if solver == "dense" or (solver == "auto" and n <= 1200):
         # M is diagonal: the symmetric standard form M^-1/2 L M^-1/2 is cheaper than eigh(L, M)
         d = 1.0 / np.sqrt(M.diagonal())
         w, Y = scipy.linalg.eigh((L.multiply(np.outer(d, d))).toarray(), subset_by_index=[0, k - 1])
         return w, Y * d[:, None], "dense"
+    if solver == "block" or (solver == "auto" and n >= BLOCK_MIN_VERTICES):
+        sigma = eigen_shift(L, M)
+        solve = _cholesky_solve((L - sigma * M).tocsc())
+        try:
+            w, V = block_eigensolve(L, M.diagonal(), k, sigma, solve,
+                                    max_restarts=BLOCK_MAX_RESTARTS)
+            return w, V, "block+cholmod"
+        except BlockSolverNoConvergence:
+            warnings.warn("eigenbasis: the block solver did not converge; falling back to ARPACK",
+                          EigenSolverWarning, stacklevel=3)
+            return _arpack_cholmod(L, M, k, sigma, solve) + ("arpack-fallback",)
     if solver in ("auto", "cholmod", "arpack-lu"):
         sigma = eigen_shift(L, M)
         A = (L - sigma * M).tocsc()
@@ -131,16 +156,8 @@ def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
             solve, name = spla.splu(A).solve, "arpack+superlu"
         else:
             solve, name = _cholesky_solve(A), "arpack+cholmod"
-        op = spla.LinearOperator((n, n), matvec=solve, matmat=solve, dtype=np.float64)
-        rng = np.random.default_rng(0)  # deterministic starting vector
-        v0 = rng.standard_normal(n)
         try:
-            # ARPACK's Lanczos steps are level-2 BLAS on (n, ncv) blocks: threads only add
-            # synchronisation there. One BLAS thread was 3x faster at 40k vertices with
-            # another process busy on the second core (benchmarks/bench_eigenbasis.py).
-            with threadpool_limits(1):
-                w, V = _arpack(L, M, k, sigma, op, v0)
-            return w, V, name
+            return _arpack_cholmod(L, M, k, sigma, solve) + (name,)
         except spla.ArpackNoConvergence:
             warnings.warn("eigenbasis: ARPACK did not converge; falling back to LOBPCG",
                           EigenSolverWarning, stacklevel=3)
@@ -148,6 +165,19 @@ def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
     if solver in ("lobpcg", "lobpcg-fallback"):
         return _lobpcg(L, M, k) + (solver,)
     raise ValueError(f"unknown eigen-solver {solver!r}")
+
+
+def _arpack_cholmod(L, M, k, sigma, solve):
+    """ARPACK in shift-invert mode on a given solve of ``(L − σM) x = b``, from a fixed start."""
+    n = L.shape[0]
+    op = spla.LinearOperator((n, n), matvec=solve, matmat=solve, dtype=np.float64)
+    rng = np.random.default_rng(0)  # deterministic starting vector
+    v0 = rng.standard_normal(n)
+    # ARPACK's Lanczos steps are level-2 BLAS on (n, ncv) blocks: threads only add
+    # synchronisation there. One BLAS thread was 3x faster at 40k vertices with
+    # another process busy on the second core (benchmarks/bench_eigenbasis.py).
+    with threadpool_limits(1):
+        return _arpack(L, M, k, sigma, op, v0)
 
 
 def _arpack(L, M, k, sigma, op, v0):
@@ -198,11 +228,16 @@ def eigenbasis(s: Surface, k: int = 100, *, method: str = "auto", solver: str = 
         Number of eigenpairs (clipped to n - 1).
     method, mass :
         Passed to :func:`laplacian`.
-    solver : {"auto", "cholmod", "arpack-lu", "dense", "lobpcg"}
-        ``"auto"``: dense for n <= 1200, else ARPACK in shift-invert mode with a
-        CHOLMOD sparse Cholesky factorisation of ``L - σM`` (cholespy; ``"arpack-lu"``
-        factorises with SuperLU instead).  If ARPACK fails to converge, LOBPCG is
-        used and an :class:`EigenSolverWarning` is issued.  The solver is part of
+    solver : {"auto", "block", "cholmod", "arpack-lu", "dense", "lobpcg"}
+        ``"auto"``: dense for n <= 1200; ARPACK in shift-invert mode with a CHOLMOD
+        sparse Cholesky factorisation of ``L - σM`` (cholespy) for n below
+        :data:`BLOCK_MIN_VERTICES` (8000); from there on the block Krylov–Schur
+        solver of :mod:`.eigen_block` on the same factorisation (``"block"``), with
+        every residual ``‖Lφ − λMφ‖ <= 1e-6 λ_max ‖Mφ‖``; if it does not converge
+        within its restart cap, ARPACK is used, an :class:`EigenSolverWarning`
+        issued and a note kept.  ``"cholmod"`` is ARPACK on CHOLMOD at any size,
+        ``"arpack-lu"`` factorises with SuperLU instead.  If ARPACK fails to
+        converge, LOBPCG is used, with the same warning.  The solver is part of
         the cache key: each solver's basis is computed and kept separately.
 
     Returns
@@ -237,6 +272,8 @@ def eigenbasis(s: Surface, k: int = 100, *, method: str = "auto", solver: str = 
     notes = []
     if used == "lobpcg-fallback":
         notes.append("ARPACK did not converge; eigenpairs come from the LOBPCG fallback")
+    if used == "arpack-fallback":
+        notes.append("the block solver did not converge; eigenpairs come from the ARPACK fallback")
     residual = _relative_residual(L, mdiag, w, V)
     if residual > 1e-6:
         msg = f"eigenpairs inaccurate: largest relative residual {residual:.1e}"
