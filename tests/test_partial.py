@@ -125,3 +125,26 @@ def test_overlap_masks_are_saved_and_old_files_load(tmp_path, hemisphere_match):
     assert back.source_overlap.tolist() == [True, True] and not back.is_partial
     with np.load(tmp_path / "old.npz") as data:
         assert "source_overlap" not in data.files
+
+
+# ------------------------------------------------------------------ completion
+def test_completion_of_a_cut_sphere_has_the_sphere_volume(hemisphere, hemisphere_match):
+    """Volume of a ball, 4/3 π r³ (r = 30 mm, the synthetic sphere of sk.synthetic)."""
+    done = sk.complete(hemisphere.target, hemisphere.source, hemisphere_match)
+    assert done.surface.is_closed
+    assert done.volume_mm3 == pytest.approx(4.0 / 3.0 * np.pi * 30.0**3, rel=0.03)
+    assert 0.4 < done.filled_volume_share < 0.6  # half the ball came from the reference
+    assert done.filled[: hemisphere.target.n_vertices].sum() == 0
+    np.testing.assert_array_equal(done.surface.vertices[: hemisphere.target.n_vertices],
+                                  hemisphere.target.vertices)
+    assert "estimate" in done.summary()["volume_note"]
+
+
+def test_completion_of_a_cropped_kidney(kidney_crop, kidney_match):
+    done = sk.complete(kidney_crop.target, kidney_crop.source, kidney_match)
+    assert done.volume_mm3 == pytest.approx(kidney_crop.whole_target.volume, rel=0.05)
+    with pytest.raises(sk.SurfaceError, match="nothing to complete"):
+        sk.complete(kidney_crop.source, kidney_crop.source,
+                    sk.Correspondence(np.arange(kidney_crop.source.n_vertices),
+                                      np.arange(kidney_crop.source.n_vertices),
+                                      rigid=kidney_match.rigid))

@@ -9,6 +9,7 @@ from ..correspondence.alignment import (
     weighted_umeyama,
 )
 from .change import ChangeReport, measure_change
+from .completion import Completion, complete
 from .labels import transfer_labels
 from .metrics import change_metrics
 from .shape_model import (
@@ -24,12 +25,14 @@ from .workflow import Comparison, compare
 __all__ = [
     "ChangeReport",
     "Comparison",
+    "Completion",
     "GroupTestResult",
     "ProcrustesResult",
     "ShapeModel",
     "Transform",
     "change_metrics",
     "compare",
+    "complete",
     "generalized_procrustes",
     "measure_change",
     "rigid_transform",
