@@ -20,7 +20,7 @@ eigenbases (computed afresh for every pair) and are inflated when other
 processes share the machine.
 
 Usage: python benchmarks/bench_match.py [--quick | --seeds S] [--n 3000] [--large] [--poses N]
-       [--intrinsic]
+       [--intrinsic] [--partial]
 """
 from __future__ import annotations
 
@@ -151,8 +151,15 @@ def main(argv=None) -> None:
     ap.add_argument("--intrinsic", action="store_true",
                     help="also score the intrinsic route alone, with and without patch descriptors")
     ap.add_argument("--only", default=None, help="run only this method")
+    ap.add_argument("--partial", action="store_true",
+                    help="instead: cropped follow-ups (10-50%% of the area cut away), see bench_partial.py")
     args = ap.parse_args(argv)
     n_seeds = args.seeds if args.seeds is not None else (1 if args.quick else 2)
+    if args.partial:
+        from bench_partial import run as run_partial
+
+        run_partial(args.n, max(n_seeds, 1))
+        return
     pairs = benchmark_pairs(args.n, int(1.2 * args.n), seeds=tuple(range(n_seeds)))
     methods = {k: v for k, v in METHODS.items() if args.only in (None, k)}
     errs = {m: [] for m in methods}

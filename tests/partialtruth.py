@@ -33,6 +33,7 @@ class PartialPair:
     target_truth: tuple
     covered: np.ndarray
     cut_share: float
+    source_truth: tuple = ()  # (face on whole_target, barycentric) of each source vertex
 
 
 def keep_faces(s: sk.Surface, keep_face: np.ndarray) -> tuple[sk.Surface, np.ndarray]:
@@ -79,7 +80,7 @@ def crop_pair(pair: Pair, share: float, seed: int) -> PartialPair:
     covered = keep_face[face_s]
     cut_share = 1.0 - target.area / pair.target.area
     return PartialPair(f"{pair.name}/crop{cut_share:.0%}", pair.source, target, pair.target,
-                       (face_t[kept], bary_t[kept]), covered, float(cut_share))
+                       (face_t[kept], bary_t[kept]), covered, float(cut_share), pair.source_truth)
 
 
 def make_partial(kind: str, deformation: str, share: float, *, n_source: int = 2000,
