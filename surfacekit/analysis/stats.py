@@ -11,7 +11,7 @@ import numpy as np
 from scipy.stats import false_discovery_control
 
 from ..io.tables import RESEARCH_NOTE
-from .chunked import column_width, is_chunked, loaded
+from .chunked import BLOCK_BYTES, column_width, is_chunked, loaded
 
 
 @dataclass
@@ -132,14 +132,14 @@ def _permutations(rng, n_permutations: int, n: int, chunk: int) -> np.ndarray:
     return perms
 
 
-def _vertex_block(n: int, p: int, chunk_size: int, n_vertices: int, vertex_block) -> int:
-    """Vertices per block: the block of data (n rows) and of permuted projections
-    (chunk_size·(p+1) rows) each hold at most ~32 MB, whatever the number of vertices."""
+def _vertex_block(n: int, n_vertices: int, vertex_block) -> int:
+    """Vertices read per block: the data of n subjects holds at most ~64 MB (fewer, larger
+    reads of a chunked input), whatever the number of vertices."""
     if vertex_block is not None:
         if int(vertex_block) < 1:
             raise ValueError(f"vertex_block must be >= 1, got {vertex_block}")
         return min(int(vertex_block), n_vertices)
-    return min(n_vertices, column_width(max(n, chunk_size * (p + 1))))
+    return min(n_vertices, column_width(n, 2 * BLOCK_BYTES))
 
 
 def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: int = 0,
@@ -172,9 +172,9 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     seed : random seed (the result is deterministic for a seed)
     covariates : (n_a + n_b, c), rows in the order group A then group B, optional
     alternative : "two-sided" (|t|), "greater" (A > B) or "less" (A < B)
-    chunk_size : permutations per matrix product
-    vertex_block : vertices per block (default: about 32 MB of data and of projections
-        per block); results agree across block sizes to rounding
+    chunk_size : permutations per matrix product (over at most ~32 MB of projections)
+    vertex_block : vertices read per block (default: about 64 MB of data per block);
+        results agree across block sizes to rounding
 
     Returns
     -------
@@ -202,7 +202,7 @@ def vertexwise_group_test(group_a, group_b, n_permutations: int = 5000, seed: in
     model = _Model(x, z, chunk_size)
     perms = _permutations(np.random.default_rng(seed), n_permutations, n, chunk_size)
     sign = {"two-sided": None, "greater": 1.0, "less": -1.0}[alternative]
-    width = _vertex_block(n, p, chunk_size, n_vertices, vertex_block)
+    width = _vertex_block(n, n_vertices, vertex_block)
     t_obs, effect = np.empty(n_vertices), np.empty(n_vertices)
     exceed = np.zeros(n_vertices, dtype=np.int64)
     max_null = np.full(n_permutations, -np.inf)
@@ -236,12 +236,14 @@ class _Model:
         self.var_factor = float(self.contrast_w @ self.contrast_w)  # (XᵀX)⁻¹ entry of β1
         self.contrast_in_q = self.qx.T @ self.contrast_w  # w lies in span(X): w = Qx a
         self.qz, _ = np.linalg.qr(z)
+        # vertices per permutation product: the projections (chunk·(p+1) rows) hold ~32 MB
+        self.width = column_width(self.chunk_size * (self.p + 1))
 
     def _prepare(self, y: np.ndarray) -> None:
         self.resid_z = y - self.qz @ (self.qz.T @ y)    # reduced-model residuals (Freedman–Lane)
         self.ss_total = np.einsum("ij,ij->j", self.resid_z, self.resid_z)
 
-    def t_stats(self, perms: np.ndarray) -> np.ndarray:
+    def t_stats(self, perms: np.ndarray, cols: slice = slice(None)) -> np.ndarray:
         # Data y* = Ẑ + P r: the Z-fitted part lies in span(X), so it leaves both
         # β1 and the full-model residuals unchanged; only P r matters.
         # Rows of Qxᵀ P (one (p, n) block per permutation), one matrix product for all.
@@ -249,9 +251,9 @@ class _Model:
         p = self.p
         qp = np.empty((c, p, n))
         qp[np.arange(c)[:, None, None], np.arange(p)[None, :, None], perms[:, None, :]] = self.qx.T
-        proj = (qp.reshape(c * p, n) @ self.resid_z).reshape(c, p, -1)
+        proj = (qp.reshape(c * p, n) @ self.resid_z[:, cols]).reshape(c, p, -1)
         beta = np.einsum("k,ckv->cv", self.contrast_in_q, proj)  # β1 = wᵀ P r with w = Qx a
-        rss = np.maximum(self.ss_total - np.einsum("cpv,cpv->cv", proj, proj), 0.0)
+        rss = np.maximum(self.ss_total[cols] - np.einsum("cpv,cpv->cv", proj, proj), 0.0)
         se = np.sqrt(rss / self.df * self.var_factor)
         return np.divide(beta, se, out=np.zeros_like(beta), where=se > 0)
 
@@ -266,11 +268,13 @@ class _Model:
         """Exceedance counts of the block; raises `max_null` to the block's maxima in place."""
         stat_obs = np.abs(t_obs) if sign is None else sign * t_obs
         exceed = np.zeros(y.shape[1], dtype=np.int64)
-        for start in range(0, perms.shape[0], self.chunk_size):
-            t_perm = self.t_stats(perms[start:start + self.chunk_size])
-            stat = np.abs(t_perm) if sign is None else sign * t_perm
-            chunk = max_null[start:start + len(stat)]
-            np.maximum(chunk, stat.max(axis=1), out=chunk)
-            exceed += (stat >= stat_obs - 1e-12).sum(axis=0)
+        for c0 in range(0, y.shape[1], self.width):
+            cols = slice(c0, c0 + self.width)
+            for start in range(0, perms.shape[0], self.chunk_size):
+                t_perm = self.t_stats(perms[start:start + self.chunk_size], cols)
+                stat = np.abs(t_perm) if sign is None else sign * t_perm
+                chunk = max_null[start:start + len(stat)]
+                np.maximum(chunk, stat.max(axis=1), out=chunk)
+                exceed[cols] += (stat >= stat_obs[cols] - 1e-12).sum(axis=0)
         self.resid_z = self.ss_total = None
         return exceed
