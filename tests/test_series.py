@@ -4,6 +4,8 @@ least-squares rates (surfacekit/analysis/rates.py), maps synchronised through th
 manifests in a cohort run (surfacekit/cohort/series.py, series_tables.py)."""
 from __future__ import annotations
 
+import csv
+import json
 from pathlib import Path
 
 import numpy as np
@@ -13,6 +15,7 @@ from scipy import stats
 import surfacekit as sk
 from surfacekit.analysis.longitudinal import compare_series
 from surfacekit.analysis.rates import fit_rates
+from surfacekit.cohort import series_tables
 from surfacekit.cohort.manifest import ManifestEntry
 from surfacekit.cohort.timeline import plan_series, scan_times
 from surfacekit.mesh import synthetic
@@ -148,3 +151,132 @@ def test_planted_regional_growth_rate_is_recovered():
     se = result.rates.normal_displacement.stderr
     assert np.all(np.isfinite(se)) and float(np.median(se)) < 0.05
     assert result.rates.summary["volume_rate_ml_per_year"] > 0
+
+
+# ------------------------------------------------------------------ series cohort
+def _bump(years: float):
+    """Outward growth of up to `years` mm around one pole (1 mm/year at its centre)."""
+    def deform(q, p):
+        return q + (years * np.exp(-((p[:, 0] - 1) ** 2 + p[:, 1] ** 2 + p[:, 2] ** 2))
+                    )[:, None] * p
+    return deform
+
+
+def _years(date: str, first: str) -> float:
+    return float((np.datetime64(date) - np.datetime64(first)).astype(float) / 365.25)
+
+
+@pytest.fixture(scope="module")
+def series_manifest(tmp_path_factory):
+    """A template and six subjects: a grows over four dated scans (rows newest first and
+    a bad date), f in a's group and b, e in the other have two scans and no growth (b also a
+    repeated date), c has one scan, and d's follow-up is another organ."""
+    folder = tmp_path_factory.mktemp("series")
+    template, _ = synthetic.organ_surface("kidney", 450, seed=100)
+    sk.save(template, folder / "template.ply")
+    lines = ["subject,path,label,group,role,age,sex,date", "atlas,template.ply,,,template,,,"]
+    plan = {"a": ("g1", ["2020-03-01", "2021-05-10", "2022-09-01", "2023-04-20"]),
+            "f": ("g1", ["2019-01-01", "2020-07-01"]),
+            "b": ("g2", ["2019-05-01", "2020-02-01"]), "e": ("g2", ["2018-01-01", "2019-06-01"]),
+            "c": ("g2", ["2020-01-01"])}
+    for sub, (group, dates) in plan.items():
+        rows = []
+        for k, d in enumerate(dates):
+            s, _ = synthetic.organ_surface("kidney", 450, seed=10 * ord(sub) + k,
+                                           deform=_bump(_years(d, dates[0])) if sub == "a"
+                                           else None)
+            sk.save(s, folder / f"{sub}{k}.ply")
+            rows.append(f"{sub},{sub}{k}.ply,,{group},subject,50,F,{d}")
+        lines += rows[::-1] if sub == "a" else rows          # a: newest first
+    lines += ["a,a0.ply,,g1,subject,50,F,2020-13-01",       # no such month
+              "b,b1.ply,,g2,subject,50,F,2019-05-01"]       # the date of b's first scan
+    other, _ = synthetic.organ_surface("hippocampus", 450, seed=5)
+    sk.save(other, folder / "d1.ply")
+    kidney, _ = synthetic.organ_surface("kidney", 450, seed=77)
+    sk.save(kidney, folder / "d0.ply")
+    lines += ["d,d0.ply,,g2,subject,50,F,2020-01-01", "d,d1.ply,,g2,subject,50,F,2021-01-01"]
+    (folder / "series.csv").write_text("\n".join(lines) + "\n")
+    return folder / "series.csv"
+
+
+SERIES_OPTIONS = {"target_vertices": 400, "n_eigenvalues": 20, "n_permutations": 50,
+                  "progress": False}
+TABLES = ("series.csv", "series_scans.csv", "cohort_summary.csv", "group_test_rates.csv")
+
+
+@pytest.fixture(scope="module")
+def series_runs(series_manifest, tmp_path_factory):
+    """One uninterrupted run, and one interrupted during its second series and resumed."""
+    whole = tmp_path_factory.mktemp("whole")
+    full = sk.run_cohort(series_manifest, whole, **SERIES_OPTIONS)
+    resumed = tmp_path_factory.mktemp("resumed")
+    real, calls = series_tables.run_series, []
+
+    def interrupted(task):
+        calls.append(task.subject)
+        if len(calls) == 2:
+            raise KeyboardInterrupt   # as if the run were stopped here
+        return real(task)
+
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(series_tables, "run_series", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            sk.run_cohort(series_manifest, resumed, **SERIES_OPTIONS)
+    assert not (resumed / "series.csv").exists()
+    again = sk.run_cohort(series_manifest, resumed, **SERIES_OPTIONS)
+    return whole, full, resumed, again
+
+
+def _csv(path) -> dict:
+    with open(path, newline="") as fh:
+        return {r["subject"]: r for r in csv.DictReader(fh)}
+
+
+@pytest.mark.slow
+@pytest.mark.filterwarnings("ignore:covariate")   # age and sex are the same for every subject
+def test_series_cohort_rows_bad_input_and_resume(series_runs):
+    whole, full, resumed, again = series_runs
+    rows = _csv(whole / "series.csv")
+    assert {k: r["status"] for k, r in rows.items()} == {
+        "a": "ok", "f": "ok", "b": "ok", "e": "ok", "c": "no_rate", "d": "failed"}
+    header = (whole / "series.csv").read_text().splitlines()[0].split(",")
+    assert "mean_normal_displacement_outward_rate_mm_per_year" in header
+    a = rows["a"]
+    assert a["n_scans"] == "4" and a["n_manifest_rows"] == "5"
+    assert float(a["time_span_years"]) == pytest.approx(_years("2023-04-20", "2020-03-01"),
+                                                        rel=1e-5)
+    assert "out of time order; they were sorted by time" in a["warnings"]
+    assert "1 manifest row(s) of this subject left out" in a["warnings"]
+    assert float(a["mean_normal_displacement_outward_rate_mm_per_year"]) > 0.1   # it grows
+    assert float(a["cycle_error_synchronised_per_sqrt_area"]) < float(
+        a["cycle_error_raw_per_sqrt_area"])
+    assert a["mean_normal_displacement_outward_rate_stderr_mm_per_year"] != ""
+    assert rows["b"]["mean_normal_displacement_outward_rate_stderr_mm_per_year"] == ""  # 2 scans
+    c = rows["c"]   # one scan: no rate, with the reason; never zero
+    assert c["error"] == "one scan with a valid time: a rate needs two or more"
+    assert c["mean_normal_displacement_outward_rate_mm_per_year"] == ""
+    assert "probably not the same organ as the baseline" in rows["d"]["error"]
+    with open(whole / "series_scans.csv", newline="") as fh:
+        scans = list(csv.DictReader(fh))
+    notes = {(r["subject"], r["date"]): r["note"] for r in scans if r["used"] == "0"}
+    assert notes[("a", "2020-13-01")].endswith("is not an ISO 8601 date (YYYY-MM-DD)")
+    assert "same time as line" in notes[("b", "2019-05-01")]
+    assert [s["status"] for s in full.series] == ["ok", "ok", "ok", "ok", "no_rate", "failed"]
+    # the rate fields on the template, in the field store, as the group test's input
+    import zarr
+    group = zarr.open_group(whole / "series_fields.zarr", mode="r")
+    rate = np.asarray(group["normal_displacement_outward_rate_mm_per_year"])
+    assert rate.shape[0] == 6 and np.all(np.isfinite(rate[:4])) and np.all(np.isnan(rate[4:]))
+    # a: up to 1 mm/year along the sphere direction at the bump's centre (less along the normal
+    # of the bent shape, and smoothed over two edge lengths on these coarse meshes)
+    assert 0.4 < np.max(rate[0]) < 1.3
+    # f, b, e: no growth built in; their two-scan rates carry the meshing offset over the
+    # time span (about 7 mm edges here: an inward offset of a few tenths of a mm)
+    assert np.mean(rate[0]) > np.max(np.mean(rate[1:4], axis=1)) + 0.1
+    assert np.all(np.abs(np.mean(rate[1:4], axis=1)) < 0.3)
+    info = json.loads((whole / "group_test_rates.json").read_text())
+    assert info["contrast"] == "g2 minus g1" and info["groups"] == {"g1": 2, "g2": 2}
+    # interrupted and resumed: byte-identical tables; the finished series was reused
+    assert again.n_computed == 0
+    for name in TABLES:
+        assert (resumed / name).read_bytes() == (whole / name).read_bytes(), name

@@ -7,7 +7,18 @@ ordinary least-squares slope of a quantity against time in years, and its standa
 error the textbook one, ``se = sqrt(RSS / (m - 2) / Σ(t - t̄)²)`` for m time points
 (e.g. Draper & Smith, *Applied Regression Analysis*, 3rd ed., Wiley 1998, §1.4).
 With two time points the slope is the difference quotient and its standard error is
-undefined (NaN); with fewer, or all at one time, the slope is NaN too.
+undefined (NaN); with fewer, or all at one time, the slope is NaN too.  Standard errors
+need three fitted points, so from three scans on they need a series of four.
+
+The baseline's own point (zero change by definition) enters the fits of normal
+displacement and log area ratio only when the series has two scans.  With three or
+more, those fits use the follow-up scans alone and a free intercept: every comparison
+of two differently meshed scans carries a constant offset that the baseline's
+comparison with itself does not (the baseline's vertices lie on the smooth surface,
+the other scan's triangles cut inside it by about h²κ/8 for edge length h and
+curvature κ), and a free intercept absorbs it instead of tilting the slope.  With
+two scans the rate is the difference quotient and carries that offset divided by the
+time span.  Volumes are all measured on meshes, so the volume fit always uses every scan.
 
 Sign conventions follow the change metrics (:mod:`surfacekit.analysis.metrics`):
 normal displacement positive outward (mm/year), log area ratio ln(scan / baseline
@@ -139,20 +150,27 @@ def _trajectory(reports, times: np.ndarray, baseline_volume_ml: float,
     return out
 
 
+def _change_fit(times: np.ndarray, values) -> RateFit:
+    """The fit of a change against the baseline: without the baseline's own zero from three
+    scans on (see the module notes)."""
+    values = np.asarray(values, dtype=np.float64)
+    return fit_rates(times[1:], values[1:]) if len(times) >= 3 else fit_rates(times, values)
+
+
 def _summary(times: np.ndarray, trajectories: list[dict], whole: list[dict]) -> dict:
     """Whole-surface and regional rates (+ standard errors) from the per-scan means."""
     vol = fit_rates(times, [s["volume_ml"] for s in trajectories])
     out = {"volume_rate_ml_per_year": float(vol.slope),
            "volume_rate_stderr_ml_per_year": float(vol.stderr)}
     for metric, stem, unit in REGIONAL_RATES:
-        fit = fit_rates(times, [0.0] + [w[metric] for w in whole])
+        fit = _change_fit(times, [0.0] + [w[metric] for w in whole])
         out[f"{stem}_{unit}"] = float(fit.slope)
         out[f"{stem}_stderr_{unit}"] = float(fit.stderr)
     regions = {}
     for name in trajectories[0]["regions"]:
         row = {}
         for metric, stem, unit in REGIONAL_RATES:
-            fit = fit_rates(times, [s["regions"][name][metric] for s in trajectories])
+            fit = _change_fit(times, [s["regions"][name][metric] for s in trajectories])
             row[f"{stem}_{unit}"] = float(fit.slope)
             row[f"{stem}_stderr_{unit}"] = float(fit.stderr)
         regions[name] = row
@@ -191,4 +209,5 @@ def series_rates(times_years, reports, *, baseline_volume_ml: float = float("nan
     lar = np.vstack([np.zeros(n)] + [r.log_area_ratio for r in reports])
     trajectories = _trajectory(reports, times, float(baseline_volume_ml), labels, names)
     summary = _summary(times, trajectories, [r.metrics() for r in reports])
-    return SeriesRates(times, fit_rates(times, nd), fit_rates(times, lar), trajectories, summary)
+    return SeriesRates(times, _change_fit(times, nd), _change_fit(times, lar), trajectories,
+                       summary)

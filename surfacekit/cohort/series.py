@@ -16,8 +16,11 @@ finished series.  The tables are then written in manifest order:
                         column names), covered fraction, cycle errors, warnings; a
                         subject without a rate says why (empty cells, never zero).
 ``series_scans.csv``    one row per manifest scan row: used or not, and the reason.
-``series_fields.npz``   per-subject rate fields on the template vertices (through the
-                        subject's template -> baseline map), NaN rows without a rate.
+``series_fields.zarr``  per-subject rate fields on the template vertices (through the
+                        subject's template -> baseline map) in a field store
+                        (:mod:`surfacekit.cohort.store`), rows in manifest order.
+``group_test_rates.csv`` the vertex-wise group test of the normal displacement rate,
+                        when there are two groups.
 
 For research use only; not for diagnosis or treatment decisions.
 """

@@ -5,21 +5,24 @@ For research use only; not for diagnosis or treatment decisions.
 """
 from __future__ import annotations
 
-import zipfile
 from pathlib import Path
 
+import dask.array as da
 import numpy as np
 
 from ..analysis.stats import vertexwise_group_test
-from ..io.files import atomic_path
-from ..io.npz import npz_member
 from ..io.tables import write_csv, write_json
 from .engines import run_tasks
 from .manifest import Manifest
 from .series import RATE_FIELDS, SERIES_COLUMNS, plan_tasks, run_series
+from .store import FieldStore, create_field_store
 from .tables import covariate_matrix, two_groups
 
 RATE_FIELD = "normal_displacement_outward_rate_mm_per_year"
+RATE_UNITS = {"normal_displacement_outward_rate_mm_per_year": "mm/year, + outward",
+              "normal_displacement_outward_rate_stderr": "mm/year",
+              "log_area_ratio_rate_per_year": "1/year, + growth",
+              "log_area_ratio_rate_stderr": "1/year"}
 
 
 def _series_row(entry, row: dict, plan) -> dict:
@@ -40,72 +43,64 @@ def _series_row(entry, row: dict, plan) -> dict:
     return out
 
 
-def _rate_rows(subject_dirs: list[Path], rows: list[dict], n_template: int, name: str):
-    """Per subject, the rate field `name` on the template vertices (NaN without a rate):
-    the baseline's rate at the vertex each template vertex was matched to."""
-    for sdir, row in zip(subject_dirs, rows):
-        out = np.full(n_template, np.nan)
-        if row["status"] == "ok" and row.get("template_ok", False):
-            with np.load(sdir / "fields.npz", allow_pickle=False) as data:
-                target = np.asarray(data["target_vertex"], dtype=np.int64)
-            with np.load(sdir / "series" / "rates.npz", allow_pickle=False) as data:
-                out = np.asarray(data[name], dtype=np.float64)[target]
-        yield out
-
-
 def write_rate_fields(path, man: Manifest, rows: list[dict], out: Path,
-                      n_template: int) -> Path:
-    """``series_fields.npz``: (subjects, template vertices) rate matrices, streamed row by row,
-    with ``subjects``, ``groups`` and ``ok`` (a rate on the template exists: the series and
-    the baseline's template comparison both succeeded).  The one place that stores the
-    per-subject rate fields of a cohort (byte-reproducible: fixed zip time stamps)."""
+                      n_template: int) -> FieldStore:
+    """``series_fields.zarr``: the per-subject rate fields on the template vertices in a field
+    store (:mod:`surfacekit.cohort.store`: one chunk per subject and field, rows in manifest
+    order, ``written`` = a rate on the template exists: the series and the baseline's
+    template comparison both succeeded).  A resumed run reuses the store and rewrites only
+    the rows of series computed in this run; rows without a rate are cleared."""
+    store = create_field_store(path, [e.subject for e in man.subjects],
+                               {name: (n_template,) for name in RATE_FIELDS}, units=RATE_UNITS)
     dirs = [out / "subjects" / e.subject for e in man.subjects]
-    ok = np.array([r["status"] == "ok" and r.get("template_ok", False) for r in rows])
-    with atomic_path(Path(path), suffix=".npz") as tmp, \
-            zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
-        for name, arr in (("subjects", np.array([e.subject for e in man.subjects])),
-                          ("groups", np.array([e.group for e in man.subjects])), ("ok", ok)):
-            with npz_member(zf, name) as fh:
-                np.lib.format.write_array(fh, arr, allow_pickle=False)
-        for name in RATE_FIELDS:
-            header = {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float64)),
-                      "fortran_order": False, "shape": (len(dirs), n_template)}
-            with npz_member(zf, name) as fh:
-                np.lib.format.write_array_header_1_0(fh, header)
-                for values in _rate_rows(dirs, rows, n_template, name):
-                    fh.write(values.tobytes())
-    return Path(path)
+    done, flagged = store.written(), store.written(RATE_FIELDS[0])
+    for i, (sdir, row) in enumerate(zip(dirs, rows)):
+        if not (row["status"] == "ok" and row.get("template_ok", False)):
+            if flagged[i]:
+                store.clear_subject(i)
+            continue
+        if row.get("cached") and done[i]:
+            continue
+        with np.load(sdir / "fields.npz", allow_pickle=False) as data:
+            target = np.asarray(data["target_vertex"], dtype=np.int64)
+        with np.load(sdir / "series" / "rates.npz", allow_pickle=False) as data:
+            store.write_subject(i, {name: np.asarray(data[name], np.float64)[target]
+                                    for name in RATE_FIELDS})
+    return store
 
 
-def write_rate_group_test(path, man: Manifest, rows: list[dict], fields_file, *,
+def write_rate_group_test(path, man: Manifest, store: FieldStore, *,
                           n_permutations: int, seed: int) -> Path | None:
     """``group_test_rates.csv``: the vertex-wise two-group test (permutation max-T, Nichols &
     Holmes 2002; FDR, Benjamini & Hochberg 1995) of the normal displacement rate
     (mm/year, + outward) on the template, adjusted for the usable covariates of the
-    baseline rows; the first group in manifest order is the reference.  None (nothing
-    written) without two groups of at least two subjects with a rate."""
-    pair = two_groups(man, [{"status": "ok" if r["status"] == "ok" and r.get("template_ok")
-                              else "no"} for r in rows])
+    baseline rows, read from the rate field store chunk by chunk; the first group in
+    manifest order is the reference; vertices where a subject has no rate are not tested.
+    None (nothing written) without two groups of at least two subjects with a rate."""
+    ok = store.written()
+    pair = two_groups(man, [{"status": "ok" if good else "no"} for good in ok])
     if pair is None:
         return None
-    with np.load(fields_file, allow_pickle=False) as data:
-        rate, ok, groups = data[RATE_FIELD], data["ok"], data["groups"]
+    groups = np.array([e.group for e in man.subjects])
     ref, other = pair
     in_ref, in_other = ok & (groups == ref), ok & (groups == other)
-    covered = np.all(np.isfinite(rate[in_ref | in_other]), axis=0)
+    covered = np.asarray(da.isfinite(store.dask(RATE_FIELD, in_ref | in_other)).all(axis=0)
+                         .compute())
     entries = ([e for e, m in zip(man.subjects, in_other) if m]
                + [e for e, m in zip(man.subjects, in_ref) if m])
     cov, used, dropped = covariate_matrix(entries)
-    res = vertexwise_group_test(rate[in_other][:, covered], rate[in_ref][:, covered],
-                                n_permutations=n_permutations, seed=seed, covariates=cov)
+    a, b = store.dask(RATE_FIELD, in_other), store.dask(RATE_FIELD, in_ref)
+    res = vertexwise_group_test(a[:, covered], b[:, covered], n_permutations=n_permutations,
+                                seed=seed, covariates=cov)
     unit = "outward_rate_mm_per_year"
     header = ["vertex", f"mean_{ref}_{unit}", f"mean_{other}_{unit}", f"t_{other}_minus_{ref}",
               "p_uncorrected", "p_fwer", "q_fdr"]
-    columns = [np.full((4, rate.shape[1]), np.nan)]
-    columns[0][:, covered] = [np.asarray(getattr(res, k)) for k in
-                              ("t", "p_uncorrected", "p_fwer", "q_fdr")]
-    table = [dict(zip(header, (i, a, b, *c))) for i, (a, b, c) in enumerate(zip(
-        rate[in_ref].mean(axis=0), rate[in_other].mean(axis=0), columns[0].T))]
+    columns = np.full((6, len(covered)), np.nan)
+    columns[0], columns[1] = (np.asarray(store.dask(RATE_FIELD, m).mean(axis=0).compute())
+                              for m in (in_ref, in_other))
+    columns[2:, covered] = [np.asarray(getattr(res, k)) for k in
+                            ("t", "p_uncorrected", "p_fwer", "q_fdr")]
+    table = [dict(zip(header, (i, *c))) for i, c in enumerate(columns.T)]
     write_json(Path(path).with_suffix(".json"), {
         "field": "normal displacement rate (mm/year, + outward)", "reference_group": ref,
         "contrast": f"{other} minus {ref}", "groups": {ref: int(in_ref.sum()),
@@ -149,11 +144,11 @@ def run_series_stage(man: Manifest, out: Path, subject_rows: list[dict], tables:
     tables["series"] = write_csv(out / "series.csv", table, columns=columns)
     tables["series_scans"] = write_csv(out / "series_scans.csv",
                                        [r for e in man.subjects for r in plans[e.subject].rows])
-    tables["series_fields"] = write_rate_fields(out / "series_fields.npz", man, rows, out,
-                                                n_template)
+    store = write_rate_fields(out / "series_fields.zarr", man, rows, out, n_template)
+    tables["series_fields"] = store.path
     test_file = out / "group_test_rates.csv"
-    written = write_rate_group_test(test_file, man, rows, tables["series_fields"],
-                                    n_permutations=n_permutations, seed=options["seed"])
+    written = write_rate_group_test(test_file, man, store, n_permutations=n_permutations,
+                                    seed=options["seed"])
     if written is None:
         for stale in (test_file, test_file.with_suffix(".json")):
             stale.unlink(missing_ok=True)
