@@ -142,8 +142,11 @@ def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
         sigma = eigen_shift(L, M)
         solve = _cholesky_solve((L - sigma * M).tocsc())
         try:
-            w, V = block_eigensolve(L, M.diagonal(), k, sigma, solve,
-                                    max_restarts=BLOCK_MAX_RESTARTS)
+            # one BLAS thread: the block products are memory-bound, and two threads
+            # on a loaded 2-core machine made them 10x slower (bench_eigenbasis.py)
+            with threadpool_limits(1):
+                w, V = block_eigensolve(L, M.diagonal(), k, sigma, solve,
+                                        max_restarts=BLOCK_MAX_RESTARTS)
             return w, V, "block+cholmod"
         except BlockSolverNoConvergence:
             warnings.warn("eigenbasis: the block solver did not converge; falling back to ARPACK",

@@ -31,6 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg
 import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
 
 
 class BlockSolverNoConvergence(RuntimeError):
@@ -75,11 +76,13 @@ def _m_orthonormalise(W: np.ndarray, m: np.ndarray) -> tuple[np.ndarray, np.ndar
 class _Basis:
     """An M-orthonormal Krylov basis (rows are vectors) and its projected operator T."""
 
-    def __init__(self, n: int, jmax: int, b: int, m: np.ndarray, rng):
+    def __init__(self, n: int, jmax: int, b: int, m: np.ndarray, rng, k: int):
         self.B = np.empty((jmax, n))
         self.T = np.zeros((jmax, jmax))
         self.J = 0
         self.b = b
+        self.k = k
+        self.keep = 0
         self.m = m
         self.rng = rng
         self.passes = 0
@@ -199,6 +202,29 @@ def _assemble(L, m, basis: _Basis, Y, k: int):
     return theta, X, rel
 
 
+def _start_basis(basis: _Basis, L: sp.spmatrix, sigma: float):
+    """Put the known null space first in the basis, then a random block M-orthogonal to it.
+
+    ``L`` has zero row sums, so the indicator of each connected part of its graph is an
+    exact eigenvector with λ = 0; a surface of c parts has c of them.  Placing them
+    in the basis as converged Ritz vectors lets the Krylov blocks, which hold at most
+    b vectors of one eigenspace, work only on the rest of the spectrum, however many
+    parts there are.  When c >= k they are the whole answer: returned, (c, n).
+    """
+    m, b = basis.m, basis.b
+    c, labels = connected_components(abs(L) > 0, directed=False)
+    Z = np.zeros((c, len(m)))
+    Z[labels, np.arange(len(m))] = 1.0
+    Z /= np.sqrt(Z @ m)[:, None]
+    if c >= basis.k:
+        return Z
+    basis.B[:c] = Z
+    basis.T[:c, :c] = np.eye(c) / (0.0 - sigma)
+    basis.J = basis.keep = c
+    basis.append(basis.rng.standard_normal((b, len(m))), 0)
+    return None
+
+
 def block_eigensolve(L: sp.spmatrix, mass: np.ndarray, k: int, sigma: float, solve, *,
                      tol: float = 1e-6, block: int = 8, keep: int | None = None,
                      max_dim: int | None = None, max_restarts: int = 40, near: float = 1e3, seed: int = 0,
@@ -224,11 +250,10 @@ def block_eigensolve(L: sp.spmatrix, mass: np.ndarray, k: int, sigma: float, sol
                          f"k={k}, keep={keep}, b={b}, max_dim={jmax}")
     m = np.asarray(mass, dtype=np.float64)
     rng = np.random.default_rng(seed)
-    basis = _Basis(n, jmax, b, m, rng)
-    basis.keep = 0
-    Q, _ = _m_orthonormalise(rng.standard_normal((b, n)), m)
-    basis.B[:b] = Q
-    basis.J = b
+    basis = _Basis(n, jmax, b, m, rng, k)
+    null = _start_basis(basis, L, sigma)
+    if null is not None:
+        return np.zeros(k), null[:k].T.copy()
     mass_scale = float(np.sqrt(np.sum(m * m) / np.sum(m)))
     restarts, last_est = 0, np.inf
     while restarts <= max_restarts:
