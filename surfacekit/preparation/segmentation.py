@@ -1,4 +1,4 @@
-"""Label volume (NIfTI or array) to a surface in world millimetres.
+"""Label volume (NIfTI, NRRD, MetaImage, SimpleITK image or array) to a surface in RAS mm.
 
 The surface is the marching-cubes isosurface at level 0.5 of the binary mask of
 one label (Lorensen & Cline, SIGGRAPH 1987; scikit-image's topologically
@@ -10,11 +10,11 @@ large scan with a small organ never costs a full-volume float copy.
 from __future__ import annotations
 
 import os
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from ..io.images import WORLD_FRAME, is_sitk_image, read_label_volume
 from ..mesh.surface import Surface, SurfaceError
 
 #: slices per slab when scanning a volume for the label's bounding box
@@ -23,20 +23,8 @@ _SLAB = 16
 
 def _load_volume(source: Any, affine: Any, spacing: Any) -> tuple[Any, np.ndarray, str]:
     """(array-like volume, 4x4 affine voxel->world mm, provenance string)."""
-    if isinstance(source, (str, os.PathLike)):
-        import nibabel as nib
-
-        path = Path(source)
-        if not path.is_file():
-            raise SurfaceError(f"no such label volume: {path}")
-        try:
-            # an open handle lets gzip read the slabs in one forward pass, not one per slab
-            img = nib.funcs.squeeze_image(nib.load(str(path), keep_file_open=True))
-        except Exception as exc:  # noqa: BLE001 - nibabel raises many types on bad files
-            raise SurfaceError(f"cannot read {path.name} as NIfTI: {exc}") from None
-        data = img.dataobj  # a proxy: slabs are read on demand
-        base = np.asarray(img.affine, dtype=np.float64)
-        name = str(path)
+    if isinstance(source, (str, os.PathLike)) or is_sitk_image(source):
+        data, base, name = read_label_volume(source)  # NIfTI, NRRD, MetaImage: RAS mm
     else:
         data = np.asanyarray(source)
         if data.dtype.kind not in "biuf":
@@ -113,8 +101,13 @@ def from_segmentation(source: Any, label: int | None, *, spacing: Any = None,
 
     Parameters
     ----------
-    source : path to ``.nii``/``.nii.gz`` (read with nibabel; the header affine is
-        used) or a 3-D numpy array of integer labels.
+    source : path to a label volume, a SimpleITK image, or a 3-D numpy array of
+        integer labels.  ``.nii``/``.nii.gz`` are read with nibabel (the header
+        affine is used); ``.nrrd``/``.nhdr``/``.mha``/``.mhd`` and SimpleITK images
+        with the optional SimpleITK reader (``pip install 'surfacekit[itk]'``),
+        their LPS geometry (origin, spacing, direction) converted to RAS
+        (:mod:`surfacekit.io.images`), so one segmentation stored in any of
+        these formats gives the same surface.
     label : the integer label to mesh; ``None`` meshes every non-zero voxel.
     spacing : optional (3,) voxel sizes in mm.  For an array without ``affine`` the
         affine becomes ``diag(spacing)``; otherwise the affine's axis directions
@@ -126,7 +119,8 @@ def from_segmentation(source: Any, label: int | None, *, spacing: Any = None,
     Returns
     -------
     Surface
-        Vertices (n, 3) in mm, faces (m, 3), closed and outward.  ``metadata``
+        Vertices (n, 3) in RAS mm (the NIfTI world frame), faces (m, 3), closed
+        and outward.  ``metadata``
         records provenance: ``source``, ``label``, ``spacing`` (mm), ``affine``,
         ``voxel_count``, ``mask_volume_mm3`` (voxel count x voxel volume),
         ``mask_centroid_mm`` and ``from_segmentation=True`` (which turns smoothing
@@ -187,5 +181,6 @@ def from_segmentation(source: Any, label: int | None, *, spacing: Any = None,
         "mask_centroid_mm": [float(x) for x in A[:3, :3] @ index_centroid + A[:3, 3]],
         "bounding_box_voxels": [lo.tolist(), hi.tolist()],
         "from_segmentation": True,
+        "world_frame": WORLD_FRAME,
     }
     return Surface(world, faces, metadata=metadata)
