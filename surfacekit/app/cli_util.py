@@ -6,10 +6,10 @@ from pathlib import Path
 import numpy as np
 
 from ..io.files import MESH_SUFFIXES as LIBRARY_MESH_SUFFIXES
+from ..io.images import VOLUME_SUFFIXES  # NIfTI, NRRD, MetaImage
 from ..mesh.surface import SurfaceError
 from .context import InputError
 
-VOLUME_SUFFIXES = (".nii", ".nii.gz")
 #: every mesh format the library reads and writes (``sk.load`` / ``sk.save``)
 MESH_SUFFIXES = LIBRARY_MESH_SUFFIXES
 #: where ``surfacekit demo -o surfacekit-demo`` writes its inputs: the help examples use them

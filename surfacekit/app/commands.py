@@ -28,6 +28,7 @@ from .cli_util import (
 )
 from .context import Command, Context, InputError
 from .prepare_command import prepare_args, run_prepare
+from .registration_options import add_registration_options, plan_registration, write_registration
 from .unit_options import add_units_option, say_warnings, units_for
 
 
@@ -120,6 +121,7 @@ def _match_args(p):
                         "they survive resampling), or NPZ as written by the landmark export; 2-3 "
                         "pairs fix near-symmetric organs")
     add_units_option(p, ("source", "target"))
+    add_registration_options(p)
 
 
 def _match_options(pose: str, landmarks: str | None, source, target):
@@ -157,6 +159,7 @@ def _match(ctx: Context) -> dict:
     report_path = ctx.outputs.claim(a.report, suffixes=(".html",)) if a.report else None
     src = load_surface(a.source, "source", units=units[0])
     tgt = load_surface(a.target, "target", units=units[1])
+    registration = plan_registration(ctx, tgt)  # --transform/--field checked before matching
     t0 = time.perf_counter()
     options, landmark_info = _match_options(a.pose, a.landmarks, src, tgt)
     names = (Path(a.source).name, Path(a.target).name)
@@ -165,13 +168,14 @@ def _match(ctx: Context) -> dict:
     seconds = time.perf_counter() - t0
     without_timings(corr)
     corr.save(target_path)
+    registered = write_registration(registration, corr, src, tgt, a.seed)
     warnings = pieces + pair_warnings(src, tgt, corr.rigid.rms, names)
     say_warnings(ctx, warnings)
     summary = {"source": names[0], "target": names[1], "output": str(a.output),
                "units": {"source": units[0], "target": units[1]}, **_map_summary(corr, src, tgt),
                **landmark_info,
                "alignment_rms_mm": float(corr.rigid.rms), "warnings": warnings,
-               "seconds": round(seconds, 2)}
+               "seconds": round(seconds, 2), **registered}
     if report_path is not None:
         from .report import write_report
         from .views import correspondence_panel, trust_report_parts
@@ -188,6 +192,7 @@ def _match(ctx: Context) -> dict:
                                  "options": {"pose": a.pose, "seed": a.seed,
                                              "landmarks": a.landmarks or "none",
                                              "units": ",".join(units)},
+                                 **registered,
                                  "timings (s)": {"match": round(seconds, 2)}})
     return summary
 

@@ -15,7 +15,8 @@ from .unit_options import add_units_option, say_warnings, units_for
 
 
 def prepare_args(p):
-    p.add_argument("input", help="label volume (.nii/.nii.gz) or mesh")
+    p.add_argument("input", help="label volume (.nii .nii.gz; .nrrd .nhdr .mha .mhd with "
+                                 "the itk extra) or mesh")
     p.add_argument("-o", "--output", required=True,
                    help="output mesh (.ply .obj .stl .off .gii .vtk .npz)")
     p.add_argument("--label", type=int, default=1, help="label to mesh in a volume (default 1)")

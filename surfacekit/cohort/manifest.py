@@ -5,7 +5,8 @@ Manifest columns (header required): ``subject,path,label,group,role,age,sex``.
 and copied to the cohort table.  Exactly one row has ``role`` ``template``
 (unless a template is given separately); every other row is a ``subject``.
 ``path`` is relative to the manifest's own folder, or absolute: a mesh
-(.ply .obj .stl .off .gii .vtk) or a label volume (.nii, .nii.gz) whose
+(.ply .obj .stl .off .gii .vtk) or a label volume (.nii .nii.gz, or .nrrd .nhdr
+.mha .mhd with the itk extra) whose
 ``label`` column gives the integer label.  An optional ``units`` column names
 the length unit of a mesh file (mm, cm, m or the size of one file unit in mm, as
 ``load(path, units=...)`` takes; blank means the run's default, mm unless given);
@@ -27,6 +28,7 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..io.images import VOLUME_SUFFIXES  # NIfTI, NRRD, MetaImage
 from ..io.units import parse_units
 from ..mesh.surface import SurfaceError
 from .timeline import group_scans
@@ -34,7 +36,6 @@ from .timeline import group_scans
 REQUIRED_COLUMNS = ("subject", "path", "label", "group", "role", "age", "sex")
 UNITS_COLUMN = "units"   # optional; never a covariate
 TIME_COLUMNS = ("date", "time_years")   # optional; either makes a series manifest
-VOLUME_SUFFIXES = (".nii", ".nii.gz")
 # Bump when the per-subject computation changes meaning, so old caches are not reused.
 PIPELINE_VERSION = "cohort-2"   # 2: area-weighted change metrics, one eigenbasis per surface
 _SUBJECT_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
