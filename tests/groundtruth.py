@@ -73,6 +73,20 @@ def noise(sigma_mm: float = 0.3, seed: int = 0):
     return deform
 
 
+def twisting(total_deg: float, axis: int = 0, length: float = 130.0):
+    """Twist about `axis` through the centroid: cross-sections turn by `total_deg` from end to end."""
+    def deform(p, sphere):
+        c = p.mean(axis=0)
+        q = p - c
+        a = np.deg2rad(total_deg) * q[:, axis] / length
+        i, j = [k for k in range(3) if k != axis]
+        out = q.copy()
+        out[:, i] = np.cos(a) * q[:, i] - np.sin(a) * q[:, j]
+        out[:, j] = np.sin(a) * q[:, i] + np.cos(a) * q[:, j]
+        return out + c
+    return deform
+
+
 def compose(*deforms):
     """Apply deformations in order."""
     def deform(p, sphere):
@@ -139,14 +153,18 @@ DEFORMATIONS = {
 
 
 def make_pair(kind: str, deformation: str, *, n_source: int = 3000, n_target: int = 3600,
-              seed: int = 0, rotate: bool = True, rotation_seed: int | None = None) -> Pair:
+              seed: int = 0, rotate: bool = True, rotation_seed: int | None = None,
+              deform=None) -> Pair:
     """One ground-truth pair; the target is deformed, randomly rotated and translated.
 
     The rotation and translation come from `rotation_seed` (default: `seed`), so the
-    same pair can be posed in many ways.
+    same pair can be posed in many ways.  `deform` (a callable as in
+    :func:`surfacekit.synthetic.organ_surface`) replaces the named `deformation`,
+    which then only names the pair.
     """
     src, sp_s = sk.synthetic.organ_surface(kind, n_source, seed=2 * seed + 1, jitter=0.3)
-    deform = DEFORMATIONS[deformation](seed) if deformation != "none" else None
+    if deform is None and deformation != "none":
+        deform = DEFORMATIONS[deformation](seed)
     if deformation == "bend":  # the same bending angle whatever the organ's length
         deform = bending(BEND_ANGLE / LENGTHS[kind])
     tgt, sp_t = sk.synthetic.organ_surface(kind, n_target, seed=2 * seed + 2, jitter=0.3, deform=deform)
@@ -178,6 +196,28 @@ def true_landmarks(pair: Pair, n: int = 3, seed: int = 5) -> tuple:
 
 
 KINDS = ("kidney", "liver", "hippocampus", "ventricle")
+
+#: length (mm) of the synthetic tube along its axis (``organ_map("tube")``)
+TUBE_LENGTH = 130.0
+
+
+def tube_pair(bend_deg: float, twist_deg: float = 30.0, *, n_source: int = 1500, n_target: int = 1800,
+              seed: int = 0) -> Pair:
+    """A tube and its copy twisted by `twist_deg` and bent by `bend_deg` (an arc over the whole
+    length, isometric along the axis), in a random pose, meshed independently."""
+    deform = compose(twisting(twist_deg, length=TUBE_LENGTH),
+                     bending(np.deg2rad(bend_deg) / TUBE_LENGTH))
+    pair = make_pair("tube", "strong-bend", n_source=n_source, n_target=n_target, seed=seed,
+                     deform=deform)
+    pair.name = f"tube/bend{bend_deg:.0f}/twist{twist_deg:.0f}/seed{seed}"
+    return pair
+
+
+def tube_pairs(n_source: int = 1500, n_target: int = 1800, n: int = 12) -> list[Pair]:
+    """`n` bent tube pairs with bends spread over 60-150 degrees, twists of 0-45 degrees (seeds 300+)."""
+    bends = np.linspace(60.0, 150.0, n)
+    return [tube_pair(float(b), float(45.0 * ((i * 5) % 7) / 6.0), n_source=n_source, n_target=n_target,
+                      seed=300 + i) for i, b in enumerate(bends)]
 
 
 def benchmark_seed(s: int, i: int, j: int) -> int:

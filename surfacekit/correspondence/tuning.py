@@ -116,3 +116,38 @@ POSE_REWEIGHTINGS = 200
 #: of the pose is left to the map (a sphere's turns: 0); measured at least 0.009 on the
 #: benchmark organs.
 POSE_WEAK_DIRECTION = 1e-3
+
+# ---------------------------------------------------------------- the tube route
+#: eigenfunctions of the smooth displacement fitted to the tube route's intrinsic map.
+TUBE_DEFORM_K = 40
+#: smoothness penalty of that fit (as DEFORM_STIFFNESS).
+TUBE_DEFORM_STIFFNESS = 1e-4
+#: rings of equal relative distance to the two ends whose centroids define a tube's centreline.
+TUBE_CENTRELINE_BINS = 24
+#: points of the resampled centreline (joints of about 1 degree on a tube bent by 150 degrees).
+TUBE_CENTRELINE_POINTS = 160
+#: smoothing of the centreline spline, relative to the cube of its length.
+TUBE_CENTRELINE_SMOOTHING = 1e-3
+#: the tube route is tried when λ2/λ1 of either surface exceeds this (a rod: 4; measured on the
+#: benchmark organs: kidney 1.9-2.3, liver 1.3-1.4, ventricle 1.7, hippocampus 3.2-3.4, tube 3.1-3.2).
+TUBE_MIN_EIGEN_RATIO = 2.6
+#: ... and its geodesic length over sqrt(area) exceeds this (measured: hippocampus 1.18-1.26,
+#: tubes bent by 60-150 degrees 1.34-1.45, kidney 0.86-0.89).
+TUBE_MIN_LENGTH = 1.3
+#: the straightened match replaces the direct one when its energy is below this share of it.
+TUBE_ENERGY_RATIO = 0.5
+#: rounds of redrawing the centreline from rings across the previous one.
+TUBE_CENTRELINE_ROUNDS = 1
+
+# ---------------------------------------------------------------- nothing to match
+#: selection energy (candidates.energy) of the chosen map at or above which two surfaces are
+#: called not the same organ.  Measured with benchmark_pairs at 1500/1800 vertices: 0.0069-0.0184
+#: on the 40 benchmark pairs, 0.023-0.084 on pairs of different organ kinds (kidney, liver,
+#: hippocampus, ventricle, tube).
+MISMATCH_ENERGY = 0.021
+#: Laplace spectrum distance (Reuter et al. 2006, weighted, first 40 eigenvalues) at or above which
+#: the same is said: 0.02-0.92 on the benchmark pairs (noise raises it most), 0.34-1.06 between
+#: different organ kinds; a backstop for shapes far apart whatever the pose.
+MISMATCH_SPECTRUM = 1.5
+#: eigenvalues compared by that distance.
+MISMATCH_SPECTRUM_K = 40

@@ -67,6 +67,34 @@ def _bend(p: np.ndarray, curvature: float, axis: int = 0, toward: int = 1) -> np
     return q
 
 
+def _tube(p: np.ndarray, length: float = 130.0, radius: float = 9.0) -> np.ndarray:
+    """Unit-sphere points to a straight tube along x with hemispherical closed ends (mm).
+
+    Latitude (the angle from the sphere's equator towards ±x) runs along the tube:
+    the middle latitudes map linearly to the cylindrical part, the outer ones to
+    the end caps.  The radius varies along the tube (wider towards -x, a waist
+    near +x) and three pouches of different sizes bulge out at different places
+    and on different sides (like the sacculations of a bowel segment), so neither
+    the two ends nor the turns about the axis are alike.
+    """
+    lat = np.arcsin(np.clip(p[:, 0], -1.0, 1.0))
+    around = np.arctan2(p[:, 2], p[:, 1])
+    cap_lat = 0.3 * np.pi  # latitudes beyond this form the caps
+    half = 0.5 * length - radius  # half length of the cylindrical part
+    u = np.clip(lat / cap_lat, -1.0, 1.0)  # -1 .. 1 along the cylindrical part
+    profile = 1.0 + (0.45 - 0.3 * u) * np.sin(0.5 * np.pi * (u + 1.0)) ** 2 * (1.0 - 0.6 * np.exp(-((u - 0.55) / 0.2) ** 2))
+    r = radius * profile
+    along = half * u
+    cap = np.abs(lat) > cap_lat
+    a = 0.5 * np.pi * (np.abs(lat[cap]) - cap_lat) / (0.5 * np.pi - cap_lat)  # 0 .. pi/2 over the cap
+    along[cap] = np.sign(lat[cap]) * (half + radius * np.sin(a))
+    r[cap] = radius * np.cos(a)
+    for centre, angle, height in ((-0.55, 0.0, 6.0), (0.05, 2.2, 4.5), (0.6, 4.1, 3.5)):
+        pouch = height * np.exp(-((along - centre * half) / 11.0) ** 2)
+        r = r + pouch * (r / radius) * np.clip(np.cos(around - angle), 0, None) ** 2
+    return np.stack([along, r * np.cos(around), r * np.sin(around)], axis=1)
+
+
 def organ_map(kind: str, sphere_points: np.ndarray, *, scale: float = 1.0) -> np.ndarray:
     """Map unit-sphere points to an organ-like shape in mm (invented, synthetic).
 
@@ -96,6 +124,8 @@ def organ_map(kind: str, sphere_points: np.ndarray, *, scale: float = 1.0) -> np
         q = np.stack([22.5 * x, 6.0 * y * taper, 7.5 * z * taper], axis=1)
         q[:, 2] += 3.0 * np.exp(-((x + 0.8) / 0.25) ** 2) * (1 + z)  # head
         q = _bend(q, 1.0 / 25.0, axis=0, toward=1)
+    elif kind == "tube":
+        q = _tube(p)
     elif kind == "ventricle":
         # rounded base at +z, tapering towards a blunt apex at -z
         taper = 1.0 - 0.45 * np.clip(-z, 0, None) ** 1.5
