@@ -15,6 +15,7 @@ from scipy import stats
 import surfacekit as sk
 from surfacekit.analysis.longitudinal import compare_series
 from surfacekit.analysis.rates import fit_rates
+from surfacekit.app import cli
 from surfacekit.cohort import series_tables
 from surfacekit.cohort.manifest import ManifestEntry
 from surfacekit.cohort.timeline import plan_series, scan_times
@@ -172,8 +173,10 @@ def series_manifest(tmp_path_factory):
     a bad date), f in a's group and b, e in the other have two scans and no growth (b also a
     repeated date), c has one scan, and d's follow-up is another organ."""
     folder = tmp_path_factory.mktemp("series")
-    template, _ = synthetic.organ_surface("kidney", 450, seed=100)
-    sk.save(template, folder / "template.ply")
+    template, sphere = synthetic.organ_surface("kidney", 450, seed=100)
+    pole = (sphere[:, 0] > 0.5).astype(np.int32)       # the +x pole, where subject a grows
+    sk.save(template, folder / "template.ply", fields={"label": pole})
+    (folder / "template.ply.regions.csv").write_text("label,name\n0,body\n1,upper pole\n")
     lines = ["subject,path,label,group,role,age,sex,date", "atlas,template.ply,,,template,,,"]
     plan = {"a": ("g1", ["2020-03-01", "2021-05-10", "2022-09-01", "2023-04-20"]),
             "f": ("g1", ["2019-01-01", "2020-07-01"]),
@@ -199,8 +202,8 @@ def series_manifest(tmp_path_factory):
     return folder / "series.csv"
 
 
-SERIES_OPTIONS = {"target_vertices": 400, "n_eigenvalues": 20, "n_permutations": 50,
-                  "progress": False}
+# the command line's defaults, so that its run reuses what the API's run computed
+SERIES_OPTIONS = {"target_vertices": 400, "n_permutations": 50, "progress": False}
 TABLES = ("series.csv", "series_scans.csv", "cohort_summary.csv", "group_test_rates.csv")
 
 
@@ -223,8 +226,10 @@ def series_runs(series_manifest, tmp_path_factory):
         with pytest.raises(KeyboardInterrupt):
             sk.run_cohort(series_manifest, resumed, **SERIES_OPTIONS)
     assert not (resumed / "series.csv").exists()
-    again = sk.run_cohort(series_manifest, resumed, **SERIES_OPTIONS)
-    return whole, full, resumed, again
+    # resumed from the command line: a series manifest needs no flag of its own
+    code = cli.main(["cohort", str(series_manifest), "-o", str(resumed), "--target-vertices",
+                     "400", "--permutations", "50", "--quiet"])
+    return whole, full, resumed, code
 
 
 def _csv(path) -> dict:
@@ -235,7 +240,7 @@ def _csv(path) -> dict:
 @pytest.mark.slow
 @pytest.mark.filterwarnings("ignore:covariate")   # age and sex are the same for every subject
 def test_series_cohort_rows_bad_input_and_resume(series_runs):
-    whole, full, resumed, again = series_runs
+    whole, full, resumed, code = series_runs
     rows = _csv(whole / "series.csv")
     assert {k: r["status"] for k, r in rows.items()} == {
         "a": "ok", "f": "ok", "b": "ok", "e": "ok", "c": "no_rate", "d": "failed"}
@@ -276,7 +281,17 @@ def test_series_cohort_rows_bad_input_and_resume(series_runs):
     assert np.all(np.abs(np.mean(rate[1:4], axis=1)) < 0.3)
     info = json.loads((whole / "group_test_rates.json").read_text())
     assert info["contrast"] == "g2 minus g1" and info["groups"] == {"g1": 2, "g2": 2}
-    # interrupted and resumed: byte-identical tables; the finished series was reused
-    assert again.n_computed == 0
+    # regional rates on the template's regions (names from template.ply.regions.csv)
+    pole = "region_upper_pole_mean_normal_displacement_outward_rate_mm_per_year"
+    body = "region_body_mean_normal_displacement_outward_rate_mm_per_year"
+    assert float(a[pole]) > float(a[body]) + 0.1 > 0.1   # the bump is centred on the pole
+    assert rows["c"][pole] == ""
+    # interrupted and resumed (from the command line): byte-identical tables, the finished
+    # subjects and series reused; exit 3 because d's series failed; the report is written
+    assert code == 3
+    assert json.loads((resumed / "run_summary.json").read_text())["n_computed"] == 0
+    html = (resumed / "series_report.html").read_text()
+    assert "Trajectory of subject a" in html and "Rates on the cohort template" in html
+    assert (resumed / "series_figures" / "trajectory_of_subject_a.png").is_file()
     for name in TABLES:
         assert (resumed / name).read_bytes() == (whole / name).read_bytes(), name

@@ -150,9 +150,16 @@ def _trajectory(reports, times: np.ndarray, baseline_volume_ml: float,
     return out
 
 
-def _change_fit(times: np.ndarray, values) -> RateFit:
-    """The fit of a change against the baseline: without the baseline's own zero from three
-    scans on (see the module notes)."""
+def change_rate(times_years, values) -> RateFit:
+    """The rate of a change measured against the baseline, ``values[0]`` being the baseline's
+    own zero: fitted without it from three scans on (see the module notes).
+
+    Parameters
+    ----------
+    times_years : (m,) scan times, the baseline first
+    values : (m,) or (m, k) change of each scan against the baseline (``values[0]`` = 0)
+    """
+    times = np.asarray(times_years, dtype=np.float64)
     values = np.asarray(values, dtype=np.float64)
     return fit_rates(times[1:], values[1:]) if len(times) >= 3 else fit_rates(times, values)
 
@@ -163,14 +170,14 @@ def _summary(times: np.ndarray, trajectories: list[dict], whole: list[dict]) -> 
     out = {"volume_rate_ml_per_year": float(vol.slope),
            "volume_rate_stderr_ml_per_year": float(vol.stderr)}
     for metric, stem, unit in REGIONAL_RATES:
-        fit = _change_fit(times, [0.0] + [w[metric] for w in whole])
+        fit = change_rate(times, [0.0] + [w[metric] for w in whole])
         out[f"{stem}_{unit}"] = float(fit.slope)
         out[f"{stem}_stderr_{unit}"] = float(fit.stderr)
     regions = {}
     for name in trajectories[0]["regions"]:
         row = {}
         for metric, stem, unit in REGIONAL_RATES:
-            fit = _change_fit(times, [s["regions"][name][metric] for s in trajectories])
+            fit = change_rate(times, [s["regions"][name][metric] for s in trajectories])
             row[f"{stem}_{unit}"] = float(fit.slope)
             row[f"{stem}_stderr_{unit}"] = float(fit.stderr)
         regions[name] = row
@@ -209,5 +216,5 @@ def series_rates(times_years, reports, *, baseline_volume_ml: float = float("nan
     lar = np.vstack([np.zeros(n)] + [r.log_area_ratio for r in reports])
     trajectories = _trajectory(reports, times, float(baseline_volume_ml), labels, names)
     summary = _summary(times, trajectories, [r.metrics() for r in reports])
-    return SeriesRates(times, _change_fit(times, nd), _change_fit(times, lar), trajectories,
+    return SeriesRates(times, change_rate(times, nd), change_rate(times, lar), trajectories,
                        summary)

@@ -13,7 +13,9 @@ from .unit_options import units_for
 
 # ---------------------------------------------------------------- cohort
 def _cohort_args(p):
-    p.add_argument("manifest", help="cohort CSV: subject,path,label,group,role,age,sex")
+    p.add_argument("manifest", help="cohort CSV: subject,path,label,group,role,age,sex; with a "
+                                    "date or time_years column, several rows per subject form "
+                                    "its series of scans (series.csv, series_report.html)")
     p.add_argument("-o", "--output", required=True, help="output folder")
     p.add_argument("--template", help="template surface (overrides the manifest's template row)")
     p.add_argument("--workers", type=int, default=1, help="local worker processes (default 1)")
@@ -77,6 +79,17 @@ def _cohort(ctx: Context) -> dict:
         emit(f"surfacekit: {result.n_failed} of {result.n_subjects} subjects failed "
              f"(see {out / 'cohort_summary.csv'})")
         summary["exit_code"] = EXIT_SOME_FAILED
+    if result.series:  # a series manifest: trajectories and rate maps in series_report.html
+        from ..cohort.manifest import read_manifest
+        from .series_report import write_series_report
+
+        template = read_manifest(manifest, template=a.template, units=units).template
+        summary["report"] = write_series_report(out, template).name
+        failed = sum(s["status"] == "failed" for s in result.series)
+        if failed:
+            emit(f"surfacekit: the series of {failed} of {result.n_subjects} subjects failed "
+                 f"(see {out / 'series.csv'})")
+            summary["exit_code"] = EXIT_SOME_FAILED
     return summary
 
 

@@ -6,7 +6,7 @@ with two or more scans of valid time runs
 :func:`surfacekit.analysis.longitudinal.compare_series` in a worker: every scan is
 loaded and prepared like a cohort subject, the maps are synchronised through the
 baseline, and the rates are written under ``subjects/<id>/series/`` (``rates.npz``:
-per-baseline-vertex rate fields; ``series.json``: the row, the trajectories and the
+per-baseline-vertex rate fields and each follow-up's normal displacement; ``series.json``: the row, the trajectories and the
 cycle errors) with a completion marker named by a key of every scan's bytes and time,
 the options and the version, so an interrupted run resumes and a re-run skips
 finished series.  The tables are then written in manifest order:
@@ -33,6 +33,7 @@ import traceback
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ..analysis.longitudinal import compare_series
@@ -166,7 +167,9 @@ def run_series(task: SeriesTask) -> dict:
                                   options=task.match_options, seed=task.options["seed"],
                                   scan_names=[s[4] for s in task.scans])
         values = _json_safe(_values(comp))
-        save_fields(out / "rates.npz", times_years=comp.times_years, **comp.rates.fields())
+        save_fields(out / "rates.npz", times_years=comp.times_years, **comp.rates.fields(),
+                    normal_displacement_per_scan=np.vstack(
+                        [c.normal_displacement for c in comp.changes]))
         write_json(out / "series.json", {"subject": task.subject, "key": task.key,
                                          "values": values})
         with atomic_path(out / f"{task.key}{MARKER_SUFFIX}", suffix=MARKER_SUFFIX) as tmp:

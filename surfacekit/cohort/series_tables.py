@@ -15,6 +15,7 @@ from ..io.tables import write_csv, write_json
 from .engines import run_tasks
 from .manifest import Manifest
 from .series import RATE_FIELDS, SERIES_COLUMNS, plan_tasks, run_series
+from .series_regions import region_columns, template_regions
 from .store import FieldStore, create_field_store
 from .tables import covariate_matrix, two_groups
 
@@ -37,9 +38,6 @@ def _series_row(entry, row: dict, plan) -> dict:
            "status": row["status"], "error": row.get("error", ""),
            "n_manifest_rows": len(plan.rows), "warnings": "; ".join(warnings)}
     out.setdefault("n_scans", len(plan.used))
-    for name, rates in (values.get("regions") or {}).items():
-        if name != "all":
-            out.update({f"region_{name}_{k}": v for k, v in rates.items()})
     return out
 
 
@@ -139,8 +137,13 @@ def run_series_stage(man: Manifest, out: Path, subject_rows: list[dict], tables:
     for row, subject_row in zip(rows, subject_rows):
         row["template_ok"] = subject_row["status"] == "ok"
     table = [_series_row(e, r, plans[e.subject]) for e, r in zip(man.subjects, rows)]
-    columns = list(SERIES_COLUMNS) + sorted({k for r in table for k in r
-                                             if k.startswith("region_")})
+    regions = template_regions(man.template, out)
+    if regions is not None:   # rates per template region, for subjects with a rate on it
+        for entry, row, line in zip(man.subjects, rows, table):
+            if row["status"] == "ok" and row["template_ok"]:
+                line.update(region_columns(out / "subjects" / entry.subject, regions))
+    columns = list(SERIES_COLUMNS) + list(dict.fromkeys(k for r in table for k in r
+                                                        if k.startswith("region_")))
     tables["series"] = write_csv(out / "series.csv", table, columns=columns)
     tables["series_scans"] = write_csv(out / "series_scans.csv",
                                        [r for e in man.subjects for r in plans[e.subject].rows])
