@@ -49,6 +49,8 @@ _PUBLIC = {
         "save_transform", "displacement_field", "transform_points", "apply_transform",
     ),
     "analysis.displacement": ("correspondence_warp",),
+    "analysis.longitudinal": ("compare_series", "SeriesComparison"),
+    "analysis.rates": ("fit_rates", "change_rate", "series_rates", "RateFit", "SeriesRates"),
     "cohort": ("run_cohort", "CohortFailedError", "UnguardedScriptError", "open_field_store",
                "FieldStore"),
     "app.report": ("write_report",),
