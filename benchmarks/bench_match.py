@@ -15,16 +15,23 @@ flags as ambiguous (the shapes barely resist a turn of the map; see
 sk.AmbiguousMatchWarning) are matched again with 3 true landmark pairs, as a
 user would after the warning; both errors are printed and the main table keeps
 the landmark-free result.  --poses N re-poses four pairs N times to show that
-the result does not depend on the initial rotation.  Timings include the
+the result does not depend on the initial rotation.  --tubes scores tube-shaped organs
+bent by 60-150 degrees and twisted (tests/groundtruth.py tube_pairs), with and without
+the solver's tube route, and prints the main table's mean with and without it too
+(pairs whose map the route did not take are the same either way).  Timings include the
 eigenbases (computed afresh for every pair) and are inflated when other
 processes share the machine.
 
-Usage: python benchmarks/bench_match.py [--quick | --seeds S] [--n 3000] [--large] [--poses N]
-       [--intrinsic] [--partial]
+--large times sk.match on the same pair set at 8000 vertices per surface (median, worst,
+worst / median, and where the time goes by solver stage).
+
+Usage: python benchmarks/bench_match.py [--quick | --seeds S] [--n 3000] [--large [--large-seeds R]]
+       [--poses N] [--intrinsic] [--partial]
 """
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 import time
 import warnings
@@ -36,9 +43,10 @@ from scipy.spatial import cKDTree
 # the ground-truth generator is a module of the test suite; benchmarks are scripts beside it
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 
-from groundtruth import benchmark_pairs, make_pair, true_landmarks
+from groundtruth import benchmark_pairs, make_pair, true_landmarks, tube_pairs
 
 import surfacekit as sk
+from surfacekit.correspondence import tuning
 from surfacekit.correspondence.fmap import SpectralShape, estimate_fmap, spectral_descriptors
 from surfacekit.correspondence.zoomout import pointmaps_from_fmap
 
@@ -71,8 +79,9 @@ def plain_fmap(source, target, k: int = 30):
 
 
 def surfacekit_match(source, target):
-    with warnings.catch_warnings():  # the ambiguity verdict is read from info, not printed
+    with warnings.catch_warnings():  # the verdicts are read from info, not printed
         warnings.simplefilter("ignore", sk.AmbiguousMatchWarning)
+        warnings.simplefilter("ignore", sk.NoMatchWarning)
         corr = sk.match(source, target)
     LAST_INFO.clear()
     LAST_INFO.update(corr.info)
@@ -88,6 +97,45 @@ def score(pair, s2t, n: int = 200, seed: int = 0) -> np.ndarray:
     idx = rng.choice(pair.source.n_vertices, n, replace=False)
     face, bary = pair.source_truth
     return sk.geodesic_error(pair.target, s2t[idx], (face[idx], bary[idx]))
+
+
+@contextlib.contextmanager
+def without_tube_route():
+    """sk.match as before the tube route: its gate never opens."""
+    saved = tuning.TUBE_MIN_EIGEN_RATIO
+    tuning.TUBE_MIN_EIGEN_RATIO = float("inf")
+    try:
+        yield
+    finally:
+        tuning.TUBE_MIN_EIGEN_RATIO = saved
+
+
+def tubes(n_vertices: int, n_pairs: int, main_means: list | None, main_without: list | None) -> None:
+    """Bent, twisted tubes with and without the tube route; the main table's means beside them."""
+    print(f"\nbent tubes: {n_pairs} pairs, bends 60-150 degrees, twists 0-45 degrees, "
+          f"~{n_vertices} / {int(1.2 * n_vertices)} vertices")
+    errs, before, worst, flags = [], [], (0.0, ""), 0
+    for pair in tube_pairs(n_vertices, int(1.2 * n_vertices), n=n_pairs):
+        t0 = time.perf_counter()
+        e = score(pair, surfacekit_match(fresh(pair.source), fresh(pair.target)))
+        seconds = time.perf_counter() - t0
+        route, taken = LAST_INFO.get("route"), (LAST_INFO.get("tube") or {}).get("taken")
+        flags += bool((LAST_INFO.get("match_check") or {}).get("low_confidence"))
+        with without_tube_route():
+            e0 = score(pair, surfacekit_match(fresh(pair.source), fresh(pair.target)))
+        errs.append(e)
+        before.append(e0.mean())
+        worst = max(worst, (float(e.mean()), pair.name))
+        print(f"  {pair.name:32s} {e.mean():.4f}/{np.percentile(e, 95):.4f} ({seconds:.1f}s, route "
+              f"{route}{'' if taken else ', tube route not taken'})   without the "
+              f"tube route {e0.mean():.4f}", flush=True)
+    allv = np.concatenate(errs)
+    print(f"bent tubes: mean {np.mean([e.mean() for e in errs]):.4f} (goal <= 0.02), p95 "
+          f"{np.percentile(allv, 95):.4f}, worst pair {worst[0]:.4f} (goal <= 0.04) {worst[1]}; "
+          f"without the tube route: mean {np.mean(before):.4f}; flagged low-confidence: {flags}")
+    if main_means:
+        print(f"main table ({len(main_means)} pairs): mean {np.mean(main_means):.4f} with the tube "
+              f"route, {np.mean(main_without):.4f} without it")
 
 
 def with_landmarks(pair, n: int = 3):
@@ -150,6 +198,9 @@ def main(argv=None) -> None:
     ap.add_argument("--poses", type=int, default=0, help="also match 4 pairs in this many random poses each")
     ap.add_argument("--intrinsic", action="store_true",
                     help="also score the intrinsic route alone, with and without patch descriptors")
+    ap.add_argument("--tubes", action="store_true",
+                    help="also score bent, twisted tubes with and without the tube route")
+    ap.add_argument("--tube-pairs", type=int, default=12, help="number of tube pairs (default 12)")
     ap.add_argument("--only", default=None, help="run only this method")
     ap.add_argument("--partial", action="store_true",
                     help="instead: cropped follow-ups (10-50%% of the area cut away), see bench_partial.py")
@@ -167,6 +218,7 @@ def main(argv=None) -> None:
     worst = {m: (0.0, "") for m in methods}
     flagged = []  # (pair name, error without landmarks, error with 3 landmarks)
     unflagged = []
+    main_means, main_without, low = [], [], []  # surfacekit with / without the tube route
     for pair in pairs:
         line = [f"{pair.name:32s}"]
         for name, fn in methods.items():
@@ -180,7 +232,16 @@ def main(argv=None) -> None:
                 worst[name] = (float(e.mean()), pair.name)
             line.append(f"{name}: {e.mean():.4f}/{np.percentile(e, 95):.4f} ({times[name][-1]:.1f}s)")
             if name == "surfacekit":
-                amb = LAST_INFO.get("rotation_ambiguity") or {}
+                info = dict(LAST_INFO)
+                main_means.append(float(e.mean()))
+                main_without.append(main_means[-1])
+                if (info.get("match_check") or {}).get("low_confidence"):
+                    low.append(pair.name)
+                if (info.get("tube") or {}).get("taken"):
+                    with without_tube_route():
+                        main_without[-1] = float(score(pair, surfacekit_match(src, tgt)).mean())
+                    line.append(f"[tube route; without it {main_without[-1]:.4f}]")
+                amb = info.get("rotation_ambiguity") or {}
                 if amb.get("ambiguous"):
                     e_lm = score(pair, with_landmarks(pair)).mean()
                     flagged.append((pair.name, float(e.mean()), float(e_lm)))
@@ -192,6 +253,10 @@ def main(argv=None) -> None:
         print("  ".join(line), flush=True)
     if pairs:
         summarise(args, pairs, methods, errs, times, worst, flagged, unflagged)
+    if main_means:
+        print(f"pairs flagged low-confidence (sk.NoMatchWarning): {len(low)} {low or ''}")
+    if args.tubes:
+        tubes(args.n, args.tube_pairs, main_means, main_without)
     if args.intrinsic:
         intrinsic_route(pairs)
     if args.poses:

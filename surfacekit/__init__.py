@@ -36,8 +36,8 @@ _PUBLIC = {
     ),
     "correspondence": (
         "match", "Correspondence", "MatchOptions", "map_quality", "geodesic_error",
-        "AmbiguousMatchWarning", "load_landmarks", "save_landmarks", "rigid_transform",
-        "similarity_transform",
+        "AmbiguousMatchWarning", "NoMatchWarning", "load_landmarks", "save_landmarks",
+        "rigid_transform", "similarity_transform",
     ),
     "analysis": (
         "measure_change", "ChangeReport", "compare", "Comparison", "transfer_labels",
@@ -81,6 +81,7 @@ __all__ = [
     "GeodesicSolver",
     "GroupTestResult",
     "MatchOptions",
+    "NoMatchWarning",
     "PrepareReport",
     "QualityReport",
     "ShapeModel",

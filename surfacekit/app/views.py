@@ -193,7 +193,8 @@ def map_trust(corr, source: Surface | None = None, target: Surface | None = None
     """Summary entries saying how far to trust a map (JSON-able).
 
     ``rotation_ambiguous`` / ``rotation_note`` (the turn/flip ambiguity of the
-    match), and with both surfaces the cheap quality numbers
+    match), ``low_confidence`` / ``low_confidence_note`` (the surfaces do not look
+    like the same organ), and with both surfaces the cheap quality numbers
     (:func:`surfacekit.correspondence.evaluation.quick_map_quality`, no geodesics),
     ``map_notes`` (measure, value, verdict, meaning, rule of thumb) and
     ``map_notes_text`` (the same as plain sentences).
@@ -208,6 +209,11 @@ def map_trust(corr, source: Surface | None = None, target: Surface | None = None
         note = turn_note(info)
         if note:
             out["rotation_note"] = note
+    check = info.get("match_check")
+    if check:  # the surfaces may not be the same organ at all (see sk.NoMatchWarning)
+        out["low_confidence"] = bool(check["low_confidence"])
+        if check["low_confidence"]:
+            out["low_confidence_note"] = check["note"]
     if source is not None and target is not None:
         quality = quick_map_quality(source, target, corr)
         notes = map_notes(quality, info)

@@ -7,13 +7,14 @@ from __future__ import annotations
 
 from .alignment import Transform, rigid_transform, similarity_transform
 from .ambiguity import AmbiguousMatchWarning
+from .mismatch import NoMatchWarning
 from .options import MatchOptions
 from .result import Correspondence, load_landmarks, save_landmarks
 from .solver import match
 
-__all__ = ["AmbiguousMatchWarning", "Correspondence", "MatchOptions", "Transform", "geodesic_error",
-           "load_landmarks", "map_quality", "match", "rigid_transform", "save_landmarks",
-           "similarity_transform"]
+__all__ = ["AmbiguousMatchWarning", "Correspondence", "MatchOptions", "NoMatchWarning", "Transform",
+           "geodesic_error", "load_landmarks", "map_quality", "match", "rigid_transform",
+           "save_landmarks", "similarity_transform"]
 
 
 def __getattr__(name: str):

@@ -272,6 +272,17 @@ _GRADED = {
 }
 
 
+def _same_organ_note(check: dict) -> dict:
+    from . import tuning
+
+    return {"measure": "same organ", "value": float(check["score"]),
+            "verdict": "poor" if check["low_confidence"] else "good", "meaning": check["note"],
+            "rule": f"poor >= 1: the larger of the map's selection energy / {tuning.MISMATCH_ENERGY:g} "
+                    f"and the Laplace spectrum distance / {tuning.MISMATCH_SPECTRUM:g}; deformed "
+                    "copies of one organ stay below 0.9, different organs reach 1.1-4 (benchmark "
+                    "pairs of benchmarks/bench_match.py)"}
+
+
 def map_notes(quality: dict, info: dict | None = None) -> list[dict]:
     """Plain notes on how far to trust a map: one entry per measure.
 
@@ -291,6 +302,9 @@ def map_notes(quality: dict, info: dict | None = None) -> list[dict]:
                                      "flip fits almost as well)",
                   "rule": "a rival turn whose fit is nearly as good is flagged (the test of "
                           "surfacekit.correspondence.ambiguity)"})
+    check = (info or {}).get("match_check")
+    if check:
+        notes.append(_same_organ_note(check))
     if "coverage_target" in quality:
         notes.append(_coverage_note(quality))
     rt = quality.get("round_trip_mean")

@@ -128,6 +128,13 @@ class Correspondence:
         target vertex but match nothing.
     target_overlap : (n_target,) bool
         The same over the target's vertices (False beyond a cropped source).
+    low_confidence : bool
+        True when the two surfaces do not look like the same organ (a kidney matched
+        against a liver, say): the map is unlikely to mean anything.  Set by ``sk.match``
+        from measured quantities (``info["match_check"]``, see
+        :func:`surfacekit.correspondence.mismatch.match_check`), which also issues a
+        :class:`~surfacekit.correspondence.mismatch.NoMatchWarning`; False in files
+        saved before it was kept.
 
     The transforms, options and seed are None for correspondences not made by
     ``sk.match`` (and in files saved before they were kept).
@@ -154,6 +161,7 @@ class Correspondence:
     info: dict = field(default_factory=dict)
     source_overlap: np.ndarray | None = None
     target_overlap: np.ndarray | None = None
+    low_confidence: bool = False
 
     def __post_init__(self):
         self.source_to_target = _check_map("source_to_target", self.source_to_target)
@@ -181,6 +189,7 @@ class Correspondence:
         self.info = dict(self.info or {})
         self.source_overlap = _check_overlap("source_overlap", self.source_overlap, n_s)
         self.target_overlap = _check_overlap("target_overlap", self.target_overlap, n_t)
+        self.low_confidence = bool(self.low_confidence)
 
     @property
     def is_partial(self) -> bool:
@@ -245,6 +254,8 @@ class Correspondence:
             arrays["options_json"] = np.array(json.dumps(self.options.to_dict()))
         if self.seed is not None:
             arrays["seed"] = np.int64(self.seed)
+        if self.low_confidence:  # files of confident maps stay as they were
+            arrays["low_confidence"] = np.bool_(True)
         if self.is_partial:  # whole-to-whole files stay as they were
             arrays["source_overlap"] = self.source_overlap
             arrays["target_overlap"] = self.target_overlap
@@ -275,6 +286,7 @@ class Correspondence:
             info=json.loads(str(d["info_json"])),
             source_overlap=d.get("source_overlap"),
             target_overlap=d.get("target_overlap"),
+            low_confidence=bool(d.get("low_confidence", False)),
         )
 
     # ------------------------------------------------------------ landmarks

@@ -17,6 +17,7 @@ from .candidates import (
     intrinsic_start,
     refine,
 )
+from .mismatch import match_check, warn_no_match
 from .options import MatchOptions
 from .partial import detect_partial, match_partial
 from .pose import affine_mm, deformation_mm, rigid_pose, similarity_mm
@@ -176,6 +177,7 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         if tube is not None:  # a strongly bent tube, matched after straightening both
             (src, tgt, chosen), posed, found = tube
         clock.lap("tube")
+        found["match_check"] = match_check(energy(src, tgt, chosen)["total"], src.values, tgt.values)
         t2s, s2t = extend(src, tgt, chosen, opts)
         # the reported functional map: from the final full-resolution map, M-weighted
         # (C = Φ_tᵀ M_t Π Φ_s, Ovsjanikov et al. 2012), in the unit-area bases
@@ -192,9 +194,10 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
         "options": opts.to_dict(),
         "seed": int(seed),
     }
+    warn_no_match(found["match_check"])
     return Correspondence(
         source_to_target=s2t, target_to_source=t2s, functional_map=C,
         confidence=confidence(tgt.points, s2t[t2s]), source_confidence=source_confidence,
         similarity=similarity_mm(posed[0], posed[1], posed[2].pose), affine=affine_mm(*posed),
         deformation=deformation_mm(*posed), rigid=rigid, options=opts, seed=int(seed),
-        info=info)
+        info=info, low_confidence=found["match_check"]["low_confidence"])

@@ -1,15 +1,18 @@
-"""The tube route: candidates for elongated, strongly bent organs (bowel segments, ureters, vessels).
+"""The tube route: matching elongated, strongly bent organs (bowel segments, ureters, vessels).
 
 A rigid pose cannot bring a tube bent by 90 degrees onto a straight one, so the
-extrinsic candidates fail there.  This route builds its map from bending-invariant
-cues only: the two ends of the tube, found intrinsically as the pair of vertices
-farthest apart along the surface (a double sweep of heat-method geodesic
-distances, Crane, Weischedel & Wardetzky, ACM TOG 2013), the geodesic distances to
-them and heat kernels centred at them, WKS/HKS and geodesic polar patch
-descriptors, in a functional map with orientation operators; it is refined by
-intrinsic ZoomOut (Melzi et al., ACM TOG 2019).  Both ways of pairing the ends are
-tried.  The map then defines a smooth deformation of the source onto the target,
-and the candidate joins the solver's usual refinement.
+extrinsic candidates fail there, and on a nearly round tube the intrinsic
+descriptors hardly tell one side from the other.  This route removes the bend
+instead: the two ends of each surface are found intrinsically, as the pair of
+vertices farthest apart along the surface (a double sweep of heat-method geodesic
+distances, Crane, Weischedel & Wardetzky, ACM TOG 2013); the geodesic distances to
+them give rings around the tube whose centroids trace its centreline; every vertex
+is then written in coordinates along that centreline (arc length) and across it
+(in frames carried along by parallel transport).  The solver's own candidate
+search (extrinsic poses, the intrinsic functional map, smooth deformation, ZoomOut)
+runs on the two straightened tubes, and the same unsupervised selection energy
+decides whether the result replaces the direct match.  Both ways of pairing the
+ends are among the poses tried.
 """
 from __future__ import annotations
 
@@ -26,10 +29,9 @@ from . import extrinsic as ex
 from . import tuning
 from .alignment import Transform, kabsch
 from .candidates import Candidate, energy, pose_residual
-from .fmap import curvature_patch_descriptors, estimate_fmap, landmark_descriptors
 from .options import MatchOptions
 from .shapes import ShapeState
-from .zoomout import nearest_rows, pointmaps_from_fmap, zoomout
+from .zoomout import nearest_rows
 
 
 def tube_ends(shape: ShapeState) -> tuple[int, int, np.ndarray, np.ndarray]:
@@ -49,30 +51,6 @@ def tubularity(shape: ShapeState, ends) -> float:
     """Geodesic length of the surface (distance between its ends) over sqrt(area): about 1.4 for
     a tube five times as long as it is wide, 0.9 for a kidney, 0.8 for a liver lobe."""
     return float(ends[2][ends[1]])
-
-
-def end_descriptors(shape: ShapeState, ends, swap: bool) -> np.ndarray:
-    """Distances to the two ends (in the order of `swap`) and heat kernels centred at them, (n, 8)."""
-    a, b, d_a, d_b = ends
-    if swap:
-        a, b, d_a, d_b = b, a, d_b, d_a
-    along = d_a / np.maximum(d_a + d_b, 1e-300)  # 0 at the first end, 1 at the second
-    cols = np.column_stack([d_a, d_b, along])
-    return np.hstack([shape.unit_columns(cols), landmark_descriptors(shape, np.array([a, b]))])
-
-
-def tube_start(src: ShapeState, tgt: ShapeState, ends_s, ends_t, swap: bool,
-               opts: MatchOptions) -> Candidate:
-    """A candidate from the intrinsic cues, with the target's ends paired in the order of `swap`."""
-    k = min(opts.intrinsic_k, src.phi.shape[1], tgt.phi.shape[1])
-    patches_s, patches_t = curvature_patch_descriptors(src), curvature_patch_descriptors(tgt)
-    desc_s = np.hstack([end_descriptors(src, ends_s, False), src.desc, patches_s])
-    desc_t = np.hstack([end_descriptors(tgt, ends_t, swap), tgt.desc, patches_t])
-    C = estimate_fmap(src, tgt, desc_s, desc_t, k)
-    t2s, _ = pointmaps_from_fmap(C, tgt.sphi[:, :k], src.sphi[:, :k], both=False)
-    C, t2s, s2t = zoomout(tgt.sphi, src.sphi, t2s, ks=range(opts.zoomout_start, opts.n_eigen + 1,
-                                                                opts.zoomout_step))
-    return replace(fitted_candidate(src, tgt, t2s, s2t, "tube"), fmap=C)
 
 
 def fitted_candidate(src: ShapeState, tgt: ShapeState, t2s: np.ndarray, s2t: np.ndarray,
