@@ -82,6 +82,18 @@ def test_time_years_rows():
     assert plan.rows[1]["note"] == "manifest line 3: time_years 'x' is not a number"
 
 
+def test_series_refuses_another_organ_and_unordered_times():
+    kidney, _ = synthetic.organ_surface("kidney", 300, seed=1)
+    small, _ = synthetic.organ_surface("hippocampus", 300, seed=2)
+    with pytest.raises(sk.mesh.surface.SurfaceError,
+                       match="probably not the same organ as the baseline"):
+        compare_series([kidney, small], [0.0, 1.0], scan_names=["baseline.ply", "later.ply"])
+    with pytest.raises(ValueError, match="strictly increasing"):
+        compare_series([kidney, kidney], [1.0, 1.0])
+    with pytest.raises(ValueError, match="at least two scans|>= 2 scans"):
+        compare_series([kidney], [0.0])
+
+
 # ------------------------------------------------------------------ planted growth
 CENTRE = np.array([0.8, 0.0, 0.6])   # a unit vector: the region centre on the sphere
 

@@ -40,7 +40,8 @@ import numpy as np
 REGIONAL_RATES = (
     ("mean_normal_displacement_outward_mm", "mean_normal_displacement_outward_rate",
      "mm_per_year"),
-    ("mean_log_area_ratio_followup_over_baseline", "mean_log_area_ratio_rate", "per_year"),
+    ("mean_log_area_ratio_followup_over_baseline", "mean_log_area_ratio_scan_over_baseline_rate",
+     "per_year"),
 )
 
 
@@ -131,9 +132,11 @@ class SeriesRates:
     def fields(self) -> dict:
         """Per-baseline-vertex rate fields (for ``sk.save(baseline, path, fields=...)``)."""
         return {"normal_displacement_outward_rate_mm_per_year": self.normal_displacement.slope,
-                "normal_displacement_outward_rate_stderr": self.normal_displacement.stderr,
-                "log_area_ratio_rate_per_year": self.log_area_ratio.slope,
-                "log_area_ratio_rate_stderr": self.log_area_ratio.stderr}
+                "normal_displacement_outward_rate_stderr_mm_per_year":
+                    self.normal_displacement.stderr,
+                "log_area_ratio_scan_over_baseline_rate_per_year": self.log_area_ratio.slope,
+                "log_area_ratio_scan_over_baseline_rate_stderr_per_year":
+                    self.log_area_ratio.stderr}
 
 
 def _trajectory(reports, times: np.ndarray, baseline_volume_ml: float,
@@ -200,8 +203,8 @@ def series_rates(times_years, reports, *, baseline_volume_ml: float = float("nan
     -------
     SeriesRates.  ``summary`` holds ``volume_rate_ml_per_year``,
     ``mean_normal_displacement_outward_rate_mm_per_year`` (+ outward),
-    ``mean_log_area_ratio_rate_per_year`` (+ growth), each with a ``*_stderr_*``
-    partner, and ``regions`` with the two regional rates per region name.
+    ``mean_log_area_ratio_scan_over_baseline_rate_per_year`` (+ growth), each with a
+    ``*_stderr_*`` partner, and ``regions`` with the two regional rates per region name.
     """
     times = np.asarray(times_years, dtype=np.float64)
     times = times - times[0]

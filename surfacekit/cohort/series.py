@@ -6,8 +6,8 @@ with two or more scans of valid time runs
 :func:`surfacekit.analysis.longitudinal.compare_series` in a worker: every scan is
 loaded and prepared like a cohort subject, the maps are synchronised through the
 baseline, and the rates are written under ``subjects/<id>/series/`` (``rates.npz``:
-per-baseline-vertex rate fields and each follow-up's normal displacement; ``series.json``: the row, the trajectories and the
-cycle errors) with a completion marker named by a key of every scan's bytes and time,
+per-baseline-vertex rate fields and each follow-up's normal displacement;
+``series.json``: the row, the trajectories and the cycle errors) with a completion marker named by a key of every scan's bytes and time,
 the options and the version, so an interrupted run resumes and a re-run skips
 finished series.  The tables are then written in manifest order:
 
@@ -48,14 +48,16 @@ from .timeline import plan_series, scan_times
 SERIES_VERSION = "series-1"
 #: per-subject rate fields, carried to the template vertices in ``series_fields.npz``
 RATE_FIELDS = ("normal_displacement_outward_rate_mm_per_year",
-               "normal_displacement_outward_rate_stderr",
-               "log_area_ratio_rate_per_year", "log_area_ratio_rate_stderr")
+               "normal_displacement_outward_rate_stderr_mm_per_year",
+               "log_area_ratio_scan_over_baseline_rate_per_year",
+               "log_area_ratio_scan_over_baseline_rate_stderr_per_year")
 SERIES_COLUMNS = (
     "subject", "group", "status", "error", "n_scans", "n_manifest_rows", "time_span_years",
     "volume_rate_ml_per_year", "volume_rate_stderr_ml_per_year",
     "mean_normal_displacement_outward_rate_mm_per_year",
     "mean_normal_displacement_outward_rate_stderr_mm_per_year",
-    "mean_log_area_ratio_rate_per_year", "mean_log_area_ratio_rate_stderr_per_year",
+    "mean_log_area_ratio_scan_over_baseline_rate_per_year",
+    "mean_log_area_ratio_scan_over_baseline_rate_stderr_per_year",
     "covered_fraction", "cycle_error_raw_per_sqrt_area", "cycle_error_synchronised_per_sqrt_area",
     "warnings")
 

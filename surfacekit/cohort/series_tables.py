@@ -21,9 +21,9 @@ from .tables import covariate_matrix, two_groups
 
 RATE_FIELD = "normal_displacement_outward_rate_mm_per_year"
 RATE_UNITS = {"normal_displacement_outward_rate_mm_per_year": "mm/year, + outward",
-              "normal_displacement_outward_rate_stderr": "mm/year",
-              "log_area_ratio_rate_per_year": "1/year, + growth",
-              "log_area_ratio_rate_stderr": "1/year"}
+              "normal_displacement_outward_rate_stderr_mm_per_year": "mm/year",
+              "log_area_ratio_scan_over_baseline_rate_per_year": "1/year, + growth",
+              "log_area_ratio_scan_over_baseline_rate_stderr_per_year": "1/year"}
 
 
 def _series_row(entry, row: dict, plan) -> dict:

@@ -30,6 +30,10 @@ before the network is built from them (this library's choice):
 :func:`cycle_errors` measures the remaining disagreement around each cycle
 0 -> i -> i+1 versus 0 -> i+1 as the mean distance on S_{i+1} divided by
 sqrt(area of S_{i+1}), for the raw pairwise vertex maps and for the synchronised maps.
+The synchronised network agrees around every cycle by construction except for what
+storing its maps on the vertices of each scan loses (interpolation and inversion), so
+its cycle error measures that loss; the raw figure is the disagreement between the
+independent matches that synchronisation removed.
 
 For research use only; not for diagnosis or treatment decisions.
 """
