@@ -105,6 +105,26 @@ def test_eigenbasis_block_path_residuals_and_signs(ellipsoid):
     np.testing.assert_allclose(basis.values[1:], ref.values[1:], rtol=TOL)
 
 
+def test_many_parts_keep_every_zero_eigenvalue():
+    """A surface of c separate parts has c zero eigenvalues (one constant per part: the
+    multiplicity of 0 is the number of connected components, Fiedler, "Algebraic
+    connectivity of graphs", Czech. Math. J. 23, 1973), here more than the block holds."""
+    parts = [sk.synthetic.icosphere(1, radius=1.0 + 0.1 * i) for i in range(14)]
+    offsets = np.cumsum([0] + [p.n_vertices for p in parts[:-1]])
+    s = sk.Surface(np.vstack([p.vertices + [5.0 * i, 0, 0] for i, p in enumerate(parts)]),
+                   np.vstack([p.faces + o for p, o in zip(parts, offsets)]))
+    L, M = sk.laplacian(s)
+    k = 32
+    lam_ref = scipy.linalg.eigh(L.toarray(), M.toarray(), eigvals_only=True,
+                                subset_by_index=[0, k - 1])
+    w, V = block_solve(L, M, k)
+    order = np.argsort(w)
+    w, V = w[order], V[:, order]
+    assert np.sum(np.abs(w) < 1e-9 * w[-1]) == 14
+    np.testing.assert_allclose(w[14:], lam_ref[14:], rtol=TOL)
+    assert np.all(relative_residuals(L, M, w, V) <= TOL)
+
+
 def test_deterministic(ellipsoid):
     _, L, M = ellipsoid
     w1, V1 = block_solve(L, M, 30)
@@ -132,8 +152,14 @@ def test_no_convergence_falls_back_to_arpack(ellipsoid, monkeypatch):
     np.testing.assert_array_equal(basis.vectors, ref.vectors)
 
 
-def test_auto_rule_keeps_small_meshes_on_arpack(ellipsoid):
+def test_auto_rule_keeps_small_meshes_on_arpack(ellipsoid, monkeypatch):
     s, _, _ = ellipsoid
     assert s.n_vertices < eigen.BLOCK_MIN_VERTICES
     s.cache = {key: val for key, val in s.cache.items() if key[0] != "eigenbasis"}
     assert sk.eigenbasis(s, 20).solver == "arpack+cholmod"
+    assert sk.eigenbasis(s, eigen.BLOCK_MIN_K).solver == "arpack+cholmod"
+    # above the size threshold the number of pairs decides
+    monkeypatch.setattr(eigen, "BLOCK_MIN_VERTICES", s.n_vertices)
+    s.cache = {key: val for key, val in s.cache.items() if key[0] != "eigenbasis"}
+    assert sk.eigenbasis(s, eigen.BLOCK_MIN_K - 1).solver == "arpack+cholmod"
+    assert sk.eigenbasis(s, eigen.BLOCK_MIN_K).solver == "block+cholmod"
