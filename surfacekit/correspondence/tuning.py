@@ -118,15 +118,20 @@ POSE_REWEIGHTINGS = 200
 POSE_WEAK_DIRECTION = 1e-3
 
 # ---------------------------------------------------------------- the tube route
-#: eigenfunctions of the smooth displacement fitted to the tube route's intrinsic map.
+#: eigenfunctions of the smooth displacement fitted to the straightened match's map, which the
+#: result reports as the deformation of the bent surfaces (a design choice: enough to follow a
+#: 150-degree bend of the benchmark tubes, see benchmarks/bench_match.py --tubes).
 TUBE_DEFORM_K = 40
-#: smoothness penalty of that fit (as DEFORM_STIFFNESS).
+#: smoothness penalty of that fit (as DEFORM_STIFFNESS; a design choice).
 TUBE_DEFORM_STIFFNESS = 1e-4
-#: rings of equal relative distance to the two ends whose centroids define a tube's centreline.
+#: rings of equal relative distance to the two ends whose centroids define a tube's centreline
+#: (a design choice: rings about 5 mm wide on a 130 mm tube).
 TUBE_CENTRELINE_BINS = 24
 #: points of the resampled centreline (joints of about 1 degree on a tube bent by 150 degrees).
 TUBE_CENTRELINE_POINTS = 160
-#: smoothing of the centreline spline, relative to the cube of its length.
+#: smoothing of the centreline spline, relative to the cube of its length: measured on bent tube
+#: pairs (seeds 300 and 305 at 1000 vertices) 1e-3 gave mean errors 0.023-0.024, 1e-4 0.026,
+#: 1e-2 0.027, 1e-6 0.05-0.37 (the centreline follows the rings' scatter).
 TUBE_CENTRELINE_SMOOTHING = 1e-3
 #: the tube route is tried when λ2/λ1 of either surface exceeds this (a rod: 4; measured on the
 #: benchmark organs: kidney 1.9-2.3, liver 1.3-1.4, ventricle 1.7, hippocampus 3.2-3.4, tube 3.1-3.2).
@@ -135,8 +140,11 @@ TUBE_MIN_EIGEN_RATIO = 2.6
 #: tubes bent by 60-150 degrees 1.34-1.45, kidney 0.86-0.89).
 TUBE_MIN_LENGTH = 1.3
 #: the straightened match replaces the direct one when its energy is below this share of it.
+#: Measured: 0.18-0.34 on tubes bent by 60-150 degrees; 0.8 let a benchmark pair of the
+#: hippocampus (hippocampus/anisotropic/seed116 at 1500 vertices, whose direct map is good) switch.
 TUBE_ENERGY_RATIO = 0.5
-#: rounds of redrawing the centreline from rings across the previous one.
+#: rounds of redrawing the centreline from rings across the previous one (measured as above:
+#: 1 round 0.023, none 0.024, 2 rounds 0.025).
 TUBE_CENTRELINE_ROUNDS = 1
 
 # ---------------------------------------------------------------- nothing to match
