@@ -149,13 +149,14 @@ TUBE_CENTRELINE_ROUNDS = 1
 
 # ---------------------------------------------------------------- nothing to match
 #: selection energy (candidates.energy) of the chosen map at or above which two surfaces are
-#: called not the same organ.  Measured with benchmark_pairs at 1500/1800 vertices: 0.0069-0.0184
-#: on the 40 benchmark pairs, 0.023-0.084 on pairs of different organ kinds (kidney, liver,
-#: hippocampus, ventricle, tube).
+#: called not the same organ.  Measured at 1500/1800 vertices: 0.0069-0.0184 on the 40 benchmark
+#: pairs (benchmark_pairs), 0.0055-0.0087 on six bent tube pairs (tube_pairs), 0.021-0.090 on the
+#: 20 ordered pairs of different organ kinds (kidney, liver, hippocampus, ventricle, tube; the
+#: lowest, 0.021-0.023, between the tube and the hippocampus, itself a bent tube).
 MISMATCH_ENERGY = 0.021
 #: Laplace spectrum distance (Reuter et al. 2006, weighted, first 40 eigenvalues) at or above which
-#: the same is said: 0.02-0.92 on the benchmark pairs (noise raises it most), 0.34-1.06 between
-#: different organ kinds; a backstop for shapes far apart whatever the pose.
+#: the same is said: 0.02-0.92 on the benchmark pairs (noise raises it most), 0.34-1.22 between
+#: different organ kinds; only a backstop for shapes far apart whatever the pose.
 MISMATCH_SPECTRUM = 1.5
 #: eigenvalues compared by that distance.
 MISMATCH_SPECTRUM_K = 40
