@@ -145,8 +145,9 @@ def test_planted_regional_growth_rate_is_recovered():
     synchronisation at most 0.01 of sqrt(area) and below the raw maps'."""
     times = [0.0, 0.8, 2.1, 3.4]
     scans, spheres = planted_series(times)
-    result = compare_series(scans, times)
     weight = _region_weight(spheres[0])
+    labels = (weight > 0.5).astype(int)
+    result = compare_series(scans, times, labels=labels, names={0: "rest", 1: "grown"})
     areas = scans[0].vertex_areas
     slope = result.rates.normal_displacement.slope
     inside, outside = weight >= 1.0, weight == 0.0
@@ -161,6 +162,14 @@ def test_planted_regional_growth_rate_is_recovered():
     assert abs(rest_rate) <= 0.1
     assert np.all(np.abs(np.percentile(slope[outside], [1, 99])) <= 0.1)
     assert synced <= 0.01 and synced < raw
+    # regional rates of the labelled regions: the planted rate averaged over each region
+    for label, name in ((1, "grown"), (0, "rest")):
+        m = labels == label
+        planted = float(areas[m] @ weight[m] / areas[m].sum())
+        found = result.rates.summary["regions"][name]
+        rate = found["mean_normal_displacement_outward_rate_mm_per_year"]
+        assert abs(rate - planted) <= 0.1 * max(planted, 1.0), (name, rate, planted)
+        assert found["mean_normal_displacement_outward_rate_stderr_mm_per_year"] < 0.05
     se = result.rates.normal_displacement.stderr
     assert np.all(np.isfinite(se)) and float(np.median(se)) < 0.05
     assert result.rates.summary["volume_rate_ml_per_year"] > 0

@@ -34,6 +34,9 @@ def _series_row(entry, row: dict, plan) -> dict:
     if left_out:
         warnings.insert(0, f"{left_out} manifest row(s) of this subject left out (reason per "
                            "row in series_scans.csv)")
+    if row["status"] == "ok" and not row["template_ok"]:
+        warnings.append("no rate map on the template: the baseline's comparison with the "
+                        "template failed (its error is in cohort_summary.csv)")
     out = {**values.get("row", {}), "subject": entry.subject, "group": entry.group,
            "status": row["status"], "error": row.get("error", ""),
            "n_manifest_rows": len(plan.rows), "warnings": "; ".join(warnings)}
