@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg
 import scipy.sparse as sp
-import scipy.sparse.linalg as spla
+from cholespy import CholeskySolverD, MatrixType
 from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
@@ -109,14 +109,12 @@ class SurfaceWarp:
         tree = cKDTree(self.fixed)
         a = tree.sparse_distance_matrix(tree, self.radius, output_type="coo_matrix")
         # the coo output keeps zero distances, so the diagonal φ(0) = 1 is there
-        matrix = sp.csc_matrix((_wendland(a.data, self.radius), (a.row, a.col)), shape=a.shape)
-        matrix = matrix.tocsr()
+        # symmetric positive definite and sparse: one CHOLMOD factorisation (cholespy) for the
+        # three components
+        solver = CholeskySolverD(len(self.fixed), a.row.astype(np.int32), a.col.astype(np.int32),
+                                 _wendland(a.data, self.radius), MatrixType.COO)
         out = np.empty_like(residual)
-        for k in range(3):  # symmetric positive definite: conjugate gradients, Jacobi-preconditioned
-            out[:, k], status = spla.cg(matrix, residual[:, k], rtol=1e-13, atol=0.0, maxiter=5000,
-                                        M=sp.diags(1.0 / matrix.diagonal()))
-            if status != 0:
-                out[:, k] = spla.spsolve(matrix.tocsc(), residual[:, k])
+        solver.solve(np.ascontiguousarray(residual), out)
         return out
 
     def _spline(self, points: np.ndarray) -> np.ndarray:
