@@ -184,3 +184,34 @@ def test_bad_kind_format_and_missing_pose_are_one_line(tmp_path):
     assert not list(tmp_path.iterdir())  # nothing written
     with pytest.raises(SurfaceError, match="no such transform file"):
         sk.apply_transform(sk.synthetic.icosphere(1), tmp_path / "missing.tfm")
+
+
+def test_prepare_command_without_the_extra(ball_files, tmp_path, monkeypatch, capsys):
+    """`surfacekit prepare x.nrrd` without SimpleITK: exit 2, one line naming the extra."""
+    from surfacekit.app import cli
+
+    _, paths, _ = ball_files
+    real_import = builtins.__import__
+
+    def no_sitk(name, *args, **kwargs):
+        if name == "SimpleITK":
+            raise ImportError("No module named 'SimpleITK'")
+        return real_import(name, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "__import__", no_sitk)
+    code = cli.main(["prepare", str(paths[".nrrd"]), "--label", "3", "-o", str(tmp_path / "o.ply")])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1 and "pip install 'surfacekit[itk]'" in err
+    assert not list(tmp_path.iterdir())
+
+
+def test_prepare_command_reads_nrrd(ball_files, tmp_path, capsys):
+    from surfacekit.app import cli
+
+    _, paths, _ = ball_files
+    code = cli.main(["prepare", str(paths[".nrrd"]), "--label", "3", "--no-smooth", "-q",
+                     "-o", str(tmp_path / "o.ply")])
+    assert code == 0, capsys.readouterr().err
+    direct = sk.from_segmentation(paths[".nii.gz"], 3)
+    assert abs(sk.load(tmp_path / "o.ply").volume - direct.volume) < 1e-3 * direct.volume

@@ -150,3 +150,31 @@ def test_command_line_writes_transform_and_field(study, tmp_path, capsys):
                        sitk.DisplacementFieldTransform(sitk.Cast(field, sitk.sitkVectorFloat64)))
     assert dice(warped, study["follow_img"]) >= 0.90
     assert sitk.ReadTransform(str(tmp_path / "pose.tfm")).GetName() == "AffineTransform"
+
+
+def test_a_comparison_carries_its_surfaces(study):
+    """sk.displacement_field(comparison, reference) reuses the comparison's surfaces and change
+    analysis, and gives the field made from the same match with the surfaces passed by hand."""
+    base, follow, corr = study["base"], study["follow"], study["corr"]
+    comparison = sk.compare(base, follow, correspondence=corr)
+    field = sk.displacement_field(comparison, study["follow_img"])
+    a = sitk.GetArrayFromImage(field)
+    b = sitk.GetArrayFromImage(study["field"])
+    assert np.abs(a - b).max() < 1e-9
+
+
+@pytest.mark.slow
+def test_the_worked_example_runs(tmp_path):
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    example = Path(__file__).resolve().parents[1] / "examples" / "registration_step.py"
+    done = subprocess.run([sys.executable, str(example)], check=False, cwd=tmp_path,
+                          capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr
+    lines = {ln.split(":")[0].strip(): ln for ln in done.stdout.splitlines()}
+    field = float(lines["Dice, displacement field"].split()[-1])
+    rigid = float(lines["Dice, rigid transform"].split()[-1])
+    assert field >= 0.90 and field >= rigid + 0.05
+    assert (tmp_path / "registration-step" / "field.nrrd").is_file()
