@@ -20,8 +20,10 @@ the irreducible representations of a finite subgroup of O(3), at most 5 (the
 icosahedral group; Altmann & Herzig, "Point-Group Theory Tables", 1994).
 
 Convergence is tested on the quantity the caller asks for: every returned pair has
-``‖Lφ − λMφ‖ ≤ tol · λ_max · ‖Mφ‖`` with λ_max the largest of the k, checked on
-the assembled vectors before they are returned.
+``‖Lφ − λMφ‖ ≤ tol · λ_max · ‖Mφ‖`` with λ_max the largest of the k.  The residual
+comes from the Krylov–Schur relation (see :func:`_residual_norms`), exact up to the
+rounding of the factorised solves; ``tests/test_eigen_fast.py`` and
+``benchmarks/bench_eigenbasis.py`` check it on the assembled vectors.
 """
 from __future__ import annotations
 
@@ -172,13 +174,12 @@ def _restart(basis: _Basis, mu, Y, coupling, keep: int) -> None:
     basis.keep = keep
 
 
-def _residual_estimate(L, sigma, basis: _Basis, mu, coupling, k: int, mass_scale: float):
-    """``‖Lx − θMx‖ / (θ_max ‖Mx‖)`` of the first k Ritz pairs, with ``‖Mx‖`` estimated.
+def _residual_norms(L, sigma, basis: _Basis, mu, coupling, k: int):
+    """``‖Lx − θMx‖`` of the first k Ritz pairs of S, and their eigenvalues θ = σ + 1/μ.
 
-    For a Ritz pair of S, ``S x − μx = Qc`` (Q the pending block, c its coupling), and
-    ``Lx − θMx = −(L − σM)Qc / μ`` with θ = σ + 1/μ: exact, from one (n × b) product.
-    ``‖Mx‖ ≈ (Σm²/Σm)^½`` for an M-normalised x spread over the surface; the
-    assembled vectors are checked exactly before they are returned.
+    For a Ritz pair of S, ``S x − μx = Qc`` (Q the pending block, c its coupling: the
+    Krylov–Schur relation), so ``Lx − θMx = −(L − σM)Qc / μ``: exact up to the
+    rounding of the relation and of the solves, from one (n × b) product.
     """
     Jp = basis.J - basis.b
     Q = np.ascontiguousarray(basis.B[Jp:basis.J].T)
@@ -186,20 +187,14 @@ def _residual_estimate(L, sigma, basis: _Basis, mu, coupling, k: int, mass_scale
     G = AQ.T @ AQ
     c = coupling[:, :k]
     res = np.sqrt(np.maximum(np.einsum("ij,ik,kj->j", c, G, c), 0.0)) / np.abs(mu[:k])
-    theta = sigma + 1.0 / mu[:k]
-    return res / (np.max(theta) * mass_scale)
+    return res, sigma + 1.0 / mu[:k]
 
 
-def _assemble(L, m, basis: _Basis, Y, k: int):
-    """The k Ritz vectors (n, k), their Rayleigh quotients and exact relative residuals."""
+def _assemble(basis: _Basis, Y, k: int):
+    """The k Ritz vectors (n, k) and ``‖Mx‖`` of each."""
     Jp = basis.J - basis.b
     X = basis.B[:Jp].T @ Y[:, :k]
-    MX = m[:, None] * X
-    LX = L @ X
-    theta = np.einsum("ij,ij->j", X, LX) / np.einsum("ij,ij->j", X, MX)
-    R = LX - MX * theta[None, :]
-    rel = np.linalg.norm(R, axis=0) / (np.max(theta) * np.linalg.norm(MX, axis=0))
-    return theta, X, rel
+    return X, np.sqrt(np.einsum("ij,ij,i->j", X, X, basis.m * basis.m))
 
 
 def _start_basis(basis: _Basis, L: sp.spmatrix, sigma: float):
@@ -232,8 +227,8 @@ def block_eigensolve(L: sp.spmatrix, mass: np.ndarray, k: int, sigma: float, sol
     """The k smallest eigenpairs of ``L φ = λ M φ`` (M = diag(mass)) by block Krylov–Schur.
 
     `solve(B)` must return ``(L − σM)⁻¹ B`` for an (n, b) block B.  The basis grows to
-    `max_dim` vectors (default keep + 12b) in blocks of `block`; each restart keeps the
-    `keep` (default k + 3b) Ritz vectors of largest shift-inverted Ritz value.
+    `max_dim` vectors (default keep + 14b) in blocks of `block`; each restart keeps the
+    `keep` (default k + 4b) Ritz vectors of largest shift-inverted Ritz value.
     Converged when every one of the k pairs has ``‖Lφ − λMφ‖ ≤ tol · λ_max · ‖Mφ‖``;
     raises :class:`BlockSolverNoConvergence` after `max_restarts` restarts.
     Returns ``(values (k,), vectors (n, k))``, M-orthonormal, ascending.
@@ -242,8 +237,8 @@ def block_eigensolve(L: sp.spmatrix, mass: np.ndarray, k: int, sigma: float, sol
     prof = profile if profile is not None else BlockProfile()
     n = L.shape[0]
     b = int(block)
-    keep = int(keep or k + 3 * b)
-    jmax = int(max_dim or keep + 12 * b)
+    keep = int(keep or k + 4 * b)
+    jmax = int(max_dim or keep + 14 * b)
     jmax = min(jmax, n - 1)
     if not (k < keep and keep + 2 * b <= jmax):
         raise ValueError(f"block solver needs k < keep and keep + 2b <= max_dim, got "
@@ -266,15 +261,17 @@ def block_eigensolve(L: sp.spmatrix, mass: np.ndarray, k: int, sigma: float, sol
         t0 = time.perf_counter()
         mu, Y, coupling = _ritz(basis)
         t1 = time.perf_counter()
-        est = _residual_estimate(L, sigma, basis, mu, coupling, k, mass_scale)
+        res, theta = _residual_norms(L, sigma, basis, mu, coupling, k)
+        # ‖Mx‖ ≈ (Σm²/Σm)^½ for an M-normalised x spread over the surface, exact below
+        est = res / (np.max(theta) * mass_scale)
         prof.seconds["residuals"] += time.perf_counter() - t1
         prof.seconds["rayleigh_ritz"] += t1 - t0
         last_est = float(np.max(est))
-        if np.max(est) <= 0.5 * tol:
+        if last_est <= 0.5 * tol:
             t2 = time.perf_counter()
-            theta, X, rel = _assemble(L, m, basis, Y, k)
+            X, mnorm = _assemble(basis, Y, k)
             prof.seconds["residuals"] += time.perf_counter() - t2
-            if np.max(rel) <= tol:
+            if np.max(res / (np.max(theta) * mnorm)) <= tol:
                 prof.restarts = restarts
                 prof.full_passes = basis.passes
                 return theta, X
