@@ -29,7 +29,6 @@ from __future__ import annotations
 import json
 import math
 import time
-import traceback
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -42,7 +41,13 @@ from ..io.files import atomic_path, save_fields
 from ..io.tables import write_json
 from ..version import __version__
 from .manifest import Manifest, cache_key, file_digest
-from .subject import MARKER_SUFFIX, load_input_surface, one_line, prepare_surface, worker_info
+from .subject import (
+    MARKER_SUFFIX,
+    load_input_surface,
+    prepare_surface,
+    record_failure,
+    worker_info,
+)
 from .timeline import plan_series, scan_times
 
 SERIES_VERSION = "series-1"
@@ -178,11 +183,7 @@ def run_series(task: SeriesTask) -> dict:
             tmp.write_text(task.key + "\n")
         row.update(status="ok", error="", values=values)
     except Exception as exc:  # noqa: BLE001 - a failing series must not stop the cohort
-        row.update(status="failed", error=one_line(exc), values={})
-        try:
-            (out / "error.txt").write_text(traceback.format_exc())
-        except OSError:
-            pass
+        record_failure(row, out, exc)
     row["timings"] = {"total": time.perf_counter() - start}
     row["worker"] = worker_info()
     return row

@@ -291,6 +291,16 @@ def worker_info() -> dict:
     return {"pid": os.getpid(), "host": socket.gethostname(), "peak_rss_mb": peak_rss_mb()}
 
 
+def record_failure(row: dict, folder: Path, exc: BaseException) -> None:
+    """Mark a task's row failed with the one-line error, and keep the traceback in
+    ``folder/error.txt`` (call inside the ``except`` block that caught `exc`)."""
+    row.update(status="failed", error=one_line(exc), values={})
+    try:
+        (folder / "error.txt").write_text(traceback.format_exc())
+    except OSError:
+        pass
+
+
 def run_subject(task: SubjectTask) -> dict:
     """Compute and store one subject; never raises: failures come back as rows."""
     out = Path(task.subject_dir)
@@ -311,11 +321,7 @@ def run_subject(task: SubjectTask) -> dict:
         (out / "error.txt").unlink(missing_ok=True)
         del subject, fields
     except Exception as exc:  # noqa: BLE001 - a failing subject must not stop the cohort
-        row.update(status="failed", error=one_line(exc), values={})
-        try:
-            (out / "error.txt").write_text(traceback.format_exc())
-        except OSError:
-            pass
+        record_failure(row, out, exc)
     gc.collect()
     timings["total"] = time.perf_counter() - start
     # CPU time of this process: with one BLAS thread, the time on an idle core

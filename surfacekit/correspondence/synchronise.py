@@ -48,13 +48,6 @@ from ..mesh.proximity import closest_on_faces, near_faces, nearest_corner
 from ..mesh.surface import Surface
 from .result import Correspondence
 
-#: two estimates of a baseline point on a scan are averaged when closer than this
-#: fraction of sqrt(area); farther apart, one of them is wrong and the direct map is kept
-#: (0.05 is the "poor" round-trip error of this library's map notes)
-AGREEMENT_LIMIT = 0.05
-#: rings of the target searched around a seed vertex when projecting a point
-PROJECTION_RINGS = 2
-
 
 @dataclass(frozen=True)
 class PointMap:
@@ -77,6 +70,14 @@ class PointMap:
     def vertex_map(self, target: Surface) -> np.ndarray:
         """(n_source,) int, the target vertex nearest each image point (a corner of its face)."""
         return nearest_corner(self.points(target), target.vertices, target.faces, self.face)
+
+
+#: two estimates of a baseline point on a scan are averaged when closer than this
+#: fraction of sqrt(area); farther apart, one of them is wrong and the direct map is kept
+#: (0.05 is the "poor" round-trip error of this library's map notes)
+AGREEMENT_LIMIT = 0.05
+#: rings of the target searched around a seed vertex when projecting a point
+PROJECTION_RINGS = 2
 
 
 def barycentric_coordinates(points: np.ndarray, triangles: np.ndarray) -> np.ndarray:
