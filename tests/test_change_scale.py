@@ -184,7 +184,8 @@ def test_pruned_closest_points_are_bit_identical(rings):
     for spread in (0.2, 5.0):
         pts = base.vertices + rng.normal(0.0, spread * base.mean_edge_length, base.vertices.shape)
         expected = closest_on_faces(pts, moved, follow.faces, near_faces(follow, s2t, rings))
-        got = closest_near(pts, moved, follow.faces, ring_faces(follow, rings), s2t)
+        got = closest_near(pts, moved, follow.faces, ring_faces(follow, rings), s2t,
+                           follow.connectivity.vertex_adjacency(self_loops=True))
         assert np.array_equal(got[0], expected[0]) and np.array_equal(got[1], expected[1])
 
 

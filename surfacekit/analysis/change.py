@@ -206,8 +206,8 @@ def _mapped_points(baseline: Surface, followup: Surface, moved: np.ndarray, s2t:
     """(n, 3) sub-vertex mapped points of the baseline vertices on the aligned follow-up
     (`moved`: the follow-up vertices in the baseline frame)."""
     smooth = geo.heat_smooth(baseline, moved[s2t] - baseline.vertices, sigma)
-    return closest_near(baseline.vertices + smooth, moved, followup.faces,
-                        ring_faces(followup, rings), s2t)[0]
+    return closest_near(baseline.vertices + smooth, moved, followup.faces, ring_faces(followup, rings),
+                        s2t, followup.connectivity.vertex_adjacency(self_loops=True))[0]
 
 
 def _check_correspondence(baseline: Surface, followup: Surface, corr) -> np.ndarray:

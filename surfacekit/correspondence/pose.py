@@ -88,12 +88,13 @@ def rigid_pose(source: Surface, target: Surface, source_to_target: np.ndarray,
     to_source = rigid_transform(target.vertices[source_to_target], x, weights=weights)
     near = ring_faces(target, rings)  # candidate faces per seed vertex, built once
     follow_near = near if follow_rings == rings else ring_faces(target, follow_rings)
-    seeds = source_to_target
+    seeds, adjacency = source_to_target, target.connectivity.vertex_adjacency(self_loops=True)
     normals = outward_vertex_normals(source)
     w, rms, used = to_source.weights, to_source.rms, 0
     earlier = [to_source]  # the poses one and two rounds back
     for used in range(1, rounds + 1):
-        foot, face = closest_near(to_source.inverse().apply(x), target.vertices, target.faces, near, seeds)
+        foot, face = closest_near(to_source.inverse().apply(x), target.vertices, target.faces, near, seeds,
+                                  adjacency)
         near, seeds = follow_near, nearest_corner(foot, target.vertices, target.faces, face)
         step, w, rms = plane_step(x, to_source.apply(foot), normals, weights, tol_mm)
         to_source = to_source.then(step)
