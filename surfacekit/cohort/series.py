@@ -26,6 +26,7 @@ For research use only; not for diagnosis or treatment decisions.
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import time
@@ -170,8 +171,10 @@ def run_series(task: SeriesTask) -> dict:
         with threadpool_limits(limits=1):
             surfaces = [prepare_surface(load_input_surface(p, lab, u), task.options)
                         for p, lab, u, _, _ in task.scans]
+            # the run's landmark pairs index the template and a subject, not two scans
+            options = dataclasses.replace(task.match_options, landmarks=())
             comp = compare_series(surfaces, [s[3] for s in task.scans],
-                                  options=task.match_options, seed=task.options["seed"],
+                                  options=options, seed=task.options["seed"],
                                   scan_names=[s[4] for s in task.scans])
         values = _json_safe(_values(comp))
         save_fields(out / "rates.npz", times_years=comp.times_years, **comp.rates.fields(),
