@@ -104,25 +104,29 @@ def transported_frames(line: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nda
     return T, N, np.cross(T, N)
 
 
-def straighten(points: np.ndarray, line: np.ndarray) -> np.ndarray:
+def straighten(points: np.ndarray, line: np.ndarray, *, block: int = 8192) -> np.ndarray:
     """Points (n, 3) in the frame of the straightened tube: arc length along the centreline
-    `line` (m, 3) to the closest point, then the offset from it in the transported frame."""
+    `line` (m, 3) to the closest point, then the offset from it in the transported frame.
+    Done `block` points at a time (memory ~ block x m)."""
     T, N, B = transported_frames(line)
     seg = np.diff(line, axis=0)
     length = np.linalg.norm(seg, axis=1)
     arc = np.concatenate([[0.0], np.cumsum(length)])
-    rel = points[:, None, :] - line[None, :-1, :]                     # (n, m-1, 3)
-    t = np.einsum("nmd,md->nm", rel, seg) / np.maximum(length**2, 1e-300)
     lo = np.where(np.arange(len(seg)) == 0, -np.inf, 0.0)
     hi = np.where(np.arange(len(seg)) == len(seg) - 1, np.inf, 1.0)
-    t = np.clip(t, lo, hi)  # the end segments extend beyond the line (into the end caps)
-    off = rel - t[:, :, None] * seg[None]
-    j = np.argmin(np.einsum("nmd,nmd->nm", off, off), axis=1)
-    rows = np.arange(len(points))
-    o = off[rows, j]
-    along = arc[j] + t[rows, j] * length[j] + np.einsum("nd,nd->n", o, T[j])  # beyond a joint too
-    return np.column_stack([along, np.einsum("nd,nd->n", o, N[j]),
-                            np.einsum("nd,nd->n", o, B[j])])
+    out = np.empty((len(points), 3))
+    for start in range(0, len(points), block):
+        rel = points[start:start + block, None, :] - line[None, :-1, :]  # (b, m-1, 3)
+        t = np.einsum("nmd,md->nm", rel, seg) / np.maximum(length**2, 1e-300)
+        t = np.clip(t, lo, hi)  # the end segments extend beyond the line (into the end caps)
+        off = rel - t[:, :, None] * seg[None]
+        j = np.argmin(np.einsum("nmd,nmd->nm", off, off), axis=1)
+        rows = np.arange(len(j))
+        o = off[rows, j]
+        out[start:start + block, 0] = arc[j] + t[rows, j] * length[j] + np.einsum("nd,nd->n", o, T[j])
+        out[start:start + block, 1] = np.einsum("nd,nd->n", o, N[j])
+        out[start:start + block, 2] = np.einsum("nd,nd->n", o, B[j])
+    return out
 
 
 def straightened(shape: ShapeState, ends) -> ShapeState:
