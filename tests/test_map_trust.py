@@ -53,8 +53,8 @@ def test_quick_round_trip_agrees_with_the_geodesic_one(kidney):
 def test_every_note_has_a_meaning_and_a_measured_rule(kidney):
     pair, corr = kidney
     notes = map_notes(quick_map_quality(pair.source, pair.target, corr), corr.info)
-    assert [n["measure"] for n in notes] == ["turn or flip", "coverage", "round-trip error",
-                                             "area distortion", "collapsed area"]
+    assert [n["measure"] for n in notes] == ["turn or flip", "same organ", "coverage",
+                                             "round-trip error", "area distortion", "collapsed area"]
     for n in notes[1:]:
         assert n["verdict"] in ("good", "fair", "poor") and "benchmark" in n["rule"]
     assert len(map_note_lines(notes)) == len(notes)
