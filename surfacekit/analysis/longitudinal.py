@@ -12,6 +12,7 @@ import numpy as np
 
 from ..correspondence import solver
 from ..correspondence.ambiguity import AmbiguousMatchWarning
+from ..correspondence.mismatch import NoMatchWarning
 from ..correspondence.options import MatchOptions
 from ..correspondence.result import Correspondence
 from ..correspondence.synchronise import cycle_errors, lift_map, synchronise
@@ -58,7 +59,8 @@ class SeriesComparison:
 
 def _match(a: Surface, b: Surface, options: MatchOptions, seed: int) -> Correspondence:
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", AmbiguousMatchWarning)  # reported as a warning line
+        warnings.simplefilter("ignore", AmbiguousMatchWarning)
+        warnings.simplefilter("ignore", NoMatchWarning)  # a warning line of the series instead
         return solver.match(a, b, options, seed=seed)
 
 
@@ -122,7 +124,9 @@ def compare_series(surfaces, times_years, *, options: MatchOptions | None = None
     maps, agreement = synchronise(surfaces, lifted, lifted_next)
     errors = cycle_errors(surfaces, [None if c is None else c.source_to_target for c in direct],
                           [None if c is None else c.source_to_target for c in neighbours], maps)
-    synced, changes, notes = [], [], []
+    synced, changes = [], []
+    notes = [f"{scan_names[i]}: its match with the baseline has low confidence (the two may not "
+             "show one organ); check this scan" for i in range(1, m) if direct[i].low_confidence]
     for i in range(1, m):
         s2t = maps[i].vertex_map(surfaces[i])
         corr = Correspondence(s2t, direct[i].target_to_source,
