@@ -23,7 +23,9 @@ reuses: there the increment understates its need and the peak is the number to r
 --tracemalloc the cold run is repeated under tracemalloc, which sees the Python-side
 allocations only (numpy arrays; not scipy's sparse factorisation), and its peak is printed.
 
-Targets: measure_change no slower than the match, and at most 500 MB peak at 50k vertices.
+Targets: measure_change no slower than the match, and at most 500 MB peak at 50k vertices,
+checked on the cold run (measure_change alone in a process; in the warm run the process
+also holds what the match built and cached, and its peak is the match's).
 Timings are inflated when other processes share the machine (the load average is printed).
 
 Usage: python benchmarks/bench_change.py [--sizes 20000 50000] [--kind kidney] [--tracemalloc]
@@ -174,11 +176,14 @@ def main(argv=None) -> int:
         t_match = res["match"]["wall_s"]
         for key in ("change_warm", "change_cold"):
             m = res[key]
-            print(f"  {key}: time / match {m['wall_s'] / t_match:.2f} (target <= 1)"
-                  + (f", peak {m['peak_mb']:.0f} MB (target <= {PEAK_TARGET_MB:.0f})"
-                     if n >= 50000 else ""))
-            if m["wall_s"] > t_match or (n >= 50000 and m["peak_mb"] > PEAK_TARGET_MB):
-                failures.append(f"{n} {key}")
+            line = f"  {key}: time / match {m['wall_s'] / t_match:.2f} (target <= 1)"
+            if m["wall_s"] > t_match:
+                failures.append(f"{n} {key} time")
+            if n >= 50000 and key == "change_cold":
+                line += f", peak {m['peak_mb']:.0f} MB (target <= {PEAK_TARGET_MB:.0f})"
+                if m["peak_mb"] > PEAK_TARGET_MB:
+                    failures.append(f"{n} {key} memory")
+            print(line)
     print("\nall targets met" if not failures else f"\ntargets missed: {failures}")
     return 0
 
