@@ -203,6 +203,8 @@ def _same_mesh_pair(n: int):
 
 
 def _traced_peak(base, follow, corr) -> int:
+    """Peak of the Python-side allocations (numpy arrays) of measure_change; tracemalloc does
+    not see the sparse LU factors SuperLU allocates in C (bench_change.py measures the RSS)."""
     tracemalloc.start()
     try:
         sk.measure_change(base, follow, corr)
@@ -214,7 +216,9 @@ def _traced_peak(base, follow, corr) -> int:
 def test_measure_change_memory_grows_linearly():
     small, large = 2000, 8000
     peaks = {n: _traced_peak(*_same_mesh_pair(n)) for n in (small, large)}
-    # 4x the vertices: linear memory gives 4x, an n x n or all-candidate-pairs array 16x / far more
+    # 4x the vertices: linear memory gives 4x (less here, the blocks of queries being
+    # fixed-size), an n x n array 16x
     assert peaks[large] / peaks[small] < 6.0, peaks
-    # the candidate pairs are handled in blocks: a few kB per vertex, not one array per pair
+    # the candidate pairs are handled in blocks: a few kB per vertex (all candidate pairs at
+    # once took about 20 kB per vertex)
     assert peaks[large] / large < 6000, f"{peaks[large] / large:.0f} bytes per vertex"
