@@ -148,3 +148,27 @@ def test_completion_of_a_cropped_kidney(kidney_crop, kidney_match):
                     sk.Correspondence(np.arange(kidney_crop.source.n_vertices),
                                       np.arange(kidney_crop.source.n_vertices),
                                       rigid=kidney_match.rigid))
+
+
+# ------------------------------------------------------------------ change on the overlap
+def test_change_is_measured_on_the_overlap_only(kidney_crop, kidney_match):
+    rep = sk.measure_change(kidney_crop.source, kidney_crop.target, kidney_match)
+    nd = rep.normal_displacement
+    assert np.all(np.isnan(nd[~kidney_match.source_overlap]))
+    assert np.all(np.isnan(rep.log_area_ratio[~kidney_match.source_overlap]))
+    measured = np.isfinite(nd)
+    w = kidney_crop.source.vertex_areas
+    # no change beyond the crop was applied: no false change where both scans have data
+    assert w[measured & (np.abs(np.nan_to_num(nd)) < 0.5)].sum() >= 0.95 * w[measured].sum()
+    summary = rep.summary()
+    true_share = w[kidney_crop.covered].sum() / w.sum()
+    assert summary["overlap_area_fraction"] == pytest.approx(true_share, abs=0.03)
+    # measured: the overlap less the band along the cut where the map ends
+    assert true_share - 0.12 < summary["covered_area_fraction"] <= summary["overlap_area_fraction"]
+    assert np.isnan(summary["volume_change_followup_minus_baseline_ml"])
+    assert "sk.complete" in summary["volume_note"]
+    assert any("covers only part" in text for text in summary["warnings"])
+    assert abs(summary["mean_normal_displacement_outward_mm"]) < 0.2
+    assert abs(summary["area_change_followup_minus_baseline_percent"]) < 3.0
+    rows = rep.regional_table(labels=(kidney_crop.source.vertices[:, 0] > 0).astype(int))
+    assert all(np.isfinite(r["mean_normal_displacement_outward_mm"]) for r in rows if r["n_vertices"])

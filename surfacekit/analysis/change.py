@@ -110,7 +110,8 @@ class ChangeReport:
             "followup_area_mm2": self.followup_area_mm2,
             "area_change_followup_minus_baseline_mm2": self.area_change_mm2,
             "area_change_followup_minus_baseline_percent": self.area_change_percent,
-            **{k: self.info[k] for k in ("covered_area_fraction", "volume_note") if k in self.info},
+            **{k: self.info[k] for k in ("covered_area_fraction", "overlap_area_fraction",
+                                         "volume_note") if k in self.info},
             **field_stats,
             "alignment_rms_mm": float(self.info.get("alignment_rms_mm", float("nan"))),
             "warnings": list(self.info.get("warnings", [])),
@@ -259,14 +260,16 @@ def _leave_out_cuts(baseline: Surface, followup: Surface, corr: Correspondence,
     vertices that are kept by the same rule read backwards (through the map
     follow-up -> baseline) and whose baseline partner is kept (vertex areas summed;
     counting follow-up vertices rather than the images of baseline triangles keeps
-    the estimate from shrinking where the map is not onto).
+    the estimate from shrinking where the map is not onto).  When one scan covers only
+    part of the other (``corr.is_partial``: a cropped scan), the vertices outside the
+    map's overlap masks are left out as well.
     """
     s2t, t2s = corr.source_to_target, corr.target_to_source
     band_b, band_f = boundary_band(baseline), boundary_band(followup)
-    one_sided = band_b ^ band_f[s2t]
+    one_sided = (band_b ^ band_f[s2t]) | ~corr.source_overlap  # no data in the other scan
     for a in fields:
         a[one_sided] = np.nan
-    covered_f = ~(band_f ^ band_b[t2s]) & ~one_sided[t2s]
+    covered_f = ~(band_f ^ band_b[t2s]) & ~one_sided[t2s] & corr.target_overlap
     area_b = float(baseline.vertex_areas[~one_sided].sum())
     area_f = float(followup.vertex_areas[covered_f].sum())
     notes = [n for n in (open_note(baseline, "baseline"), open_note(followup, "follow-up")) if n]
@@ -278,6 +281,20 @@ def _leave_out_cuts(baseline: Surface, followup: Surface, corr: Correspondence,
                 f"is measured over the region both surfaces cover ({share:.1%} of the baseline "
                 "area), and change values within one edge ring of a boundary that only one scan "
                 f"has are left out ({int(one_sided.sum())} baseline vertices, NaN)" for n in notes]
+    if corr.is_partial:  # a cropped scan: one plain sentence instead
+        cropped_baseline = corr.info.get("partial", {}).get("side") == "source"
+        part, whole, mask = (("baseline", followup, corr.target_overlap) if cropped_baseline
+                             else ("follow-up", baseline, corr.source_overlap))
+        covers = float(whole.vertex_areas[mask].sum() / whole.area)
+        info["overlap_area_fraction"] = float(baseline.vertex_areas[corr.source_overlap].sum()
+                                              / baseline.area)
+        info["volume_note"] += ("; the " + part + " covers only part of the organ (sk.complete "
+                                "estimates its volume from the whole scan)")
+        warnings = [(f"the {part} covers only part of the other scan (a cropped scan: "
+                     f"{covers:.1%} of its area); change is measured over {share:.1%} of the "
+                     "baseline's area (the overlap without the band along the cut, where the map "
+                     f"ends); elsewhere it is not measured ({int(one_sided.sum())} baseline "
+                     "vertices, NaN), and the volume change is not reported")]
     return info, warnings
 
 
@@ -314,6 +331,11 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
        ``info["volume_note"]``, and the area change is measured over the region
        both surfaces cover (``info["covered_area_fraction"]`` of the baseline
        area); a warning names each open side.  Closed pairs are not affected.
+       When one scan covers only part of the other (a cropped scan, ``corr.is_partial``,
+       from ``sk.match``'s partial route), the baseline vertices outside the map's
+       ``source_overlap`` are not measured either (NaN), and the area change counts only
+       the follow-up's ``target_overlap``; ``info["covered_area_fraction"]`` says how much
+       of the baseline was covered.
     6. ``info["warnings"]`` (also in :meth:`ChangeReport.summary`): plain sentences
        when a surface's size is implausible for an organ, the two differ in scale
        by more than 3x, the alignment residual is large for the organ's size, or a
@@ -348,7 +370,7 @@ def measure_change(baseline: Surface, followup: Surface, corr: Correspondence, *
     normal_displacement = np.einsum("ij,ij->i", displacement, normals)
     log_area_ratio, n_flipped = _log_area_ratio(baseline, mapped, sigma)  # 4.
     open_info, open_warnings = {}, []
-    if not (baseline.is_closed and followup.is_closed):  # 5. open surfaces
+    if not (baseline.is_closed and followup.is_closed) or corr.is_partial:  # 5. open surfaces
         open_info, open_warnings = _leave_out_cuts(
             baseline, followup, corr, (displacement, normal_displacement, log_area_ratio))
 

@@ -146,6 +146,27 @@ def _balanced(faces: np.ndarray) -> bool:
     return bool(np.array_equal(forward, backward))
 
 
+def _close_holes(region: Surface, part: Surface) -> Surface:
+    """The region with every border loop beyond the part's cut count closed by a fan around its
+    centroid: islands of the covered mask inside the region to fill (the loops farthest from
+    the part's cuts)."""
+    loops = region.boundary_loops
+    extra = len(loops) - len(part.boundary_loops)
+    if extra <= 0:
+        return region
+    cuts = np.array([part.vertices[lp].mean(axis=0) for lp in part.boundary_loops])
+    far = [float(np.min(np.linalg.norm(cuts - region.vertices[lp].mean(axis=0), axis=1)))
+           for lp in loops]
+    vertices, faces = [region.vertices], [region.faces]
+    n = region.n_vertices
+    for k in np.argsort(far)[::-1][:extra]:
+        lp = loops[k]
+        vertices.append(region.vertices[lp].mean(axis=0)[None])
+        faces.append(np.column_stack([np.roll(lp, -1), lp, np.full(len(lp), n)]))
+        n += 1
+    return Surface(np.vstack(vertices), np.vstack(faces))
+
+
 def _pair_loops(part: Surface, region: Surface) -> list[tuple[np.ndarray, np.ndarray]]:
     """Each cut loop of the part with the border loop of the filled region nearest to it."""
     loops_p, loops_r = part.boundary_loops, region.boundary_loops
@@ -197,6 +218,7 @@ def complete(partial: Surface, reference: Surface, corr: Correspondence) -> Comp
     if not fill.any():
         raise SurfaceError("the map says the cropped surface covers all of the reference: nothing to fill")
     region, _ids = _region(reference, moved, fill)
+    region = _close_holes(region, partial)
     cut = np.flatnonzero(partial.connectivity.boundary_vertices)
     shift_cut = partial.vertices[cut] - moved[p2r[cut]]
     border = np.flatnonzero(region.connectivity.boundary_vertices)

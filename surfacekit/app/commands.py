@@ -120,23 +120,27 @@ def _match_args(p):
                         "target_x,target_y,target_z columns (snapped to the nearest vertices, so "
                         "they survive resampling), or NPZ as written by the landmark export; 2-3 "
                         "pairs fix near-symmetric organs")
+    p.add_argument("--partial", choices=("auto", "yes", "no"), default="auto",
+                   help="one scan covers only part of the other (a cropped scan): auto (default) "
+                        "when exactly one is open along a flat cut, yes to force, no to forbid")
     add_units_option(p, ("source", "target"))
     add_registration_options(p)
 
 
-def _match_options(pose: str, landmarks: str | None, source, target):
+def _match_options(pose: str, landmarks: str | None, source, target, partial: str = "auto"):
     """Match options, and the summary's note on the landmarks (points in mm are snapped)."""
     from ..correspondence import MatchOptions
 
     pairs, info = landmark_pairs(landmarks, source, target)
     return MatchOptions(same_orientation={"auto": None, "same": True, "any": False}[pose],
-                        landmarks=pairs), info
+                        landmarks=pairs, partial=partial), info
 
 
 def _map_summary(corr, source=None, target=None) -> dict:
+    from .partial_views import partial_summary
     from .views import map_trust
 
-    out = {}
+    out = partial_summary(corr)  # a cropped scan: the covered region and its share
     if getattr(corr, "confidence", None) is not None:
         out["mean_confidence"] = float(np.mean(corr.confidence))
     info = getattr(corr, "info", {}) or {}
@@ -161,7 +165,7 @@ def _match(ctx: Context) -> dict:
     tgt = load_surface(a.target, "target", units=units[1])
     registration = plan_registration(ctx, tgt)  # --transform/--field checked before matching
     t0 = time.perf_counter()
-    options, landmark_info = _match_options(a.pose, a.landmarks, src, tgt)
+    options, landmark_info = _match_options(a.pose, a.landmarks, src, tgt, a.partial)
     names = (Path(a.source).name, Path(a.target).name)
     src, tgt, options, pieces = main_pieces(src, tgt, options, names)  # small extra pieces dropped
     corr = solver.match(src, tgt, options, seed=a.seed)
@@ -189,7 +193,7 @@ def _match(ctx: Context) -> dict:
                      warnings=warnings, tables=trust_table,
                      provenance={"inputs": [input_record(Path(a.source), src),
                                             input_record(Path(a.target), tgt)],
-                                 "options": {"pose": a.pose, "seed": a.seed,
+                                 "options": {"pose": a.pose, "seed": a.seed, "partial": a.partial,
                                              "landmarks": a.landmarks or "none",
                                              "units": ",".join(units)},
                                  **registered,
@@ -212,6 +216,9 @@ def _change_args(p):
     p.add_argument("--pose", choices=("auto", "same", "any"), default="auto", help="as for 'match'")
     p.add_argument("--landmarks", metavar="PAIRS", help="known pairs (vertex indices or points in mm), as for 'match'")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report and figures")
+    p.add_argument("--partial", choices=("auto", "yes", "no"), default="auto",
+                   help="one scan covers only part of the other (a cropped scan): auto (default) "
+                        "when exactly one is open along a flat cut, yes to force, no to forbid")
     add_units_option(p, ("baseline", "follow-up", "region template"))
 
 
@@ -255,6 +262,7 @@ def _write_change(out: Path, base, result) -> None:
 
 
 def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
+    from .partial_views import partial_summary
     from .report import write_report
     from .views import change_figures, change_panel, map_trust, trust_report_parts
 
@@ -265,6 +273,7 @@ def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
     warnings = summary.pop("warnings")
     trust_summary, tables = trust_report_parts(map_trust(corr, base, follow))
     summary.update(trust_summary)  # the turn note and a verdict per map-quality measure
+    summary.update(partial_summary(corr))
     tables = {**({"Regions": regional} if regional else {}), **tables}
     write_report(out / "report.html", title="surfacekit change report",
                  subtitle=f"{names[0]} → {names[1]}",
@@ -273,7 +282,7 @@ def _change_report(out: Path, a, surfaces, result, timings: dict) -> None:
                  figures=change_figures(base, rep, regional, corr), figure_dir=out / "figures",
                  provenance={"inputs": [input_record(Path(a.baseline), base),
                                         input_record(Path(a.followup), follow)],
-                             "options": {"pose": a.pose, "seed": a.seed,
+                             "options": {"pose": a.pose, "seed": a.seed, "partial": a.partial,
                                          "map": a.map or "", "regions": a.regions or "",
                                          "region names": a.region_names or "",
                                          "units": a.units},
@@ -294,7 +303,7 @@ def _change(ctx: Context) -> dict:
         raise InputError("--landmarks has no effect with --map (the map is already made); give one of them")
     template, template_labels = (load_regions(a.regions, a.region_field, units[2]) if a.regions
                                  else (None, None))
-    options, landmark_info = _match_options(a.pose, a.landmarks, base, follow)
+    options, landmark_info = _match_options(a.pose, a.landmarks, base, follow, a.partial)
     base, follow, options, pieces = main_pieces(base, follow, options,
                                                 (Path(a.baseline).name, Path(a.followup).name))
     corr = _load_map(a.map, base, follow) if a.map else None

@@ -28,6 +28,12 @@ def _cmap(kind: str):
     return LinearSegmentedColormap.from_list(f"sk_{kind}", [(p, c) for p, c in scale])
 
 
+def _missing_colour() -> str:
+    from . import panels
+
+    return panels.MISSING
+
+
 def view_name(elev: float, azim: float) -> str:
     """Where the camera of a matplotlib 3D view sits, in words: "view from −y, above (+z)".
 
@@ -82,12 +88,14 @@ def surface_figure(surface: Surface, values: np.ndarray, *, title: str, kind: st
     else:
         face_values = values[surface.faces].mean(axis=1)
         cmap = _cmap(kind)
+        finite = values[np.isfinite(values)] if np.isfinite(values).any() else np.zeros(1)
         if kind == "diverging":
-            m = float(np.percentile(np.abs(values), 99)) or 1.0
+            m = float(np.percentile(np.abs(finite), 99)) or 1.0
             norm = Normalize(-m, m)
         else:
-            lo, hi = np.percentile(values, [1, 99])
+            lo, hi = np.percentile(finite, [1, 99])
             norm = Normalize(lo, hi if hi > lo else lo + 1)
+        cmap = cmap.with_extremes(bad=_missing_colour())  # not measured (NaN): grey, in a legend
     fig = plt.figure(figsize=(4.2 * len(views) + 1.2, 3.8))
     v = surface.vertices - 0.5 * (surface.vertices.min(axis=0) + surface.vertices.max(axis=0))
     half = np.maximum(0.5 * np.ptp(v, axis=0), 1e-9 * max(float(np.ptp(v)), 1.0))
@@ -109,6 +117,12 @@ def surface_figure(surface: Surface, values: np.ndarray, *, title: str, kind: st
     else:
         sm = plt.cm.ScalarMappable(norm=norm, cmap=cmap)
         fig.colorbar(sm, ax=fig.axes, shrink=0.7, pad=0.02).set_label(label)
+        if not np.all(np.isfinite(face_values)):
+            from matplotlib.patches import Patch
+
+            fig.legend(handles=[Patch(facecolor=_missing_colour(), edgecolor="#555555",
+                                      label="not measured")], loc="lower left", frameon=False,
+                       fontsize=9)
     fig.suptitle(title)
     return fig
 

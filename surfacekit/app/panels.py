@@ -25,6 +25,10 @@ CYCLIC = [[0.0, "#d1495b"], [0.25, "#edae49"], [0.5, "#66a182"], [0.75, "#2e4057
 LABEL_COLOURS = ["#c8c8c8", "#3d7ea6", "#e0a030", "#6aa84f", "#b5527a", "#7d6bb3", "#4fb0a5",
                  "#c8664a", "#8c8c3a", "#5a6f8c"]
 NEUTRAL = [[0.0, "#cfd4d8"], [1.0, "#cfd4d8"]]
+#: colour of vertices whose value was not measured (NaN), e.g. beyond a cropped scan
+MISSING = "#b4b4b4"
+#: share of the colour bar taken by the grey "not measured" band
+MISSING_BAND = 0.06
 KINDS = ("diverging", "sequential", "labels", "cyclic")
 
 
@@ -125,9 +129,33 @@ def scale_caption(layer: ReportLayer, style: dict, surfaces: list) -> str:
     missing = [name for (name, _), v in zip(surfaces, layer.values) if v is None]
     if missing:
         scale += f" Not defined on {', '.join(missing)} (shown grey)."
+    if has_missing(layer):
+        scale += (" Grey (the band below the colour bar): not measured, where the other scan has "
+                  "no surface (a cropped scan) or along a cut only one scan has.")
     name = f"{layer.name} ({layer.unit})" if layer.unit else layer.name
     return " ".join(t for t in (f"{name[:1].upper()}{name[1:]}:", layer.description.strip(), scale)
                     if t)
+
+
+def has_missing(layer: ReportLayer) -> bool:
+    """Whether a non-label layer has values that were not measured (NaN) on some surface."""
+    return layer.kind != "labels" and any(
+        v is not None and not np.all(np.isfinite(np.asarray(v, dtype=float))) for v in layer.values)
+
+
+def _with_missing_band(scale: list, lo: float, hi: float) -> tuple[list, float, float]:
+    """The colour scale with a grey band below its low end, the new low end, and the value
+    (inside the band) that stands for "not measured"."""
+    g = MISSING_BAND
+    new_lo = lo - g / (1.0 - g) * (hi - lo)
+    banded = [[0.0, MISSING], [g, MISSING]] + [[g + (1.0 - g) * p, c] for p, c in scale]
+    return banded, new_lo, 0.5 * (new_lo + lo)
+
+
+def _grey_faces(faces: np.ndarray, vals: np.ndarray, sentinel: float) -> np.ndarray:
+    """Per-face values (mean of the corners) with `sentinel` on faces touching a NaN corner."""
+    face_vals = vals[faces].mean(axis=1)
+    return np.where(np.isfinite(face_vals), face_vals, sentinel)
 
 
 def _face_labels(faces: np.ndarray, labels: np.ndarray) -> np.ndarray:
@@ -159,6 +187,10 @@ def _layer_update(layer: ReportLayer, surfaces: list) -> dict:
                                             "cmin", "cmax", "showscale", "colorbar.title.text",
                                             "colorbar.tickvals", "colorbar.ticktext")}
     last_defined = max((i for i, v in enumerate(layer.values) if v is not None), default=-1)
+    banded = has_missing(layer)
+    if banded:
+        band_scale, band_lo, sentinel = _with_missing_band(style["colorscale"], style["cmin"],
+                                                           style["cmax"])
     for i, ((name, s), values) in enumerate(zip(surfaces, layer.values)):
         if values is None:
             vals, scale, lo, hi = np.zeros(s.n_vertices), NEUTRAL, 0.0, 1.0
@@ -169,6 +201,10 @@ def _layer_update(layer: ReportLayer, surfaces: list) -> dict:
                                  f"surface {name!r} with {s.n_vertices} vertices")
             scale, lo, hi = style["colorscale"], style["cmin"], style["cmax"]
         mode = "vertex"
+        if banded and values is not None:  # NaN shown grey, with a band on the colour bar
+            scale, lo = band_scale, band_lo
+            if not np.all(np.isfinite(vals)):
+                vals, mode = _grey_faces(s.faces, vals, sentinel), "cell"
         if layer.kind == "labels" and values is not None:
             # one flat colour per triangle: interpolating labels across a face would
             # paint the colours of unrelated labels along region borders
@@ -181,9 +217,12 @@ def _layer_update(layer: ReportLayer, surfaces: list) -> dict:
         upd["cmax"].append(hi)
         upd["showscale"].append(i == last_defined)
         upd["colorbar.title.text"].append(esc(title))
-        upd["colorbar.tickvals"].append(style["tickvals"])
-        upd["colorbar.ticktext"].append([esc(t) for t in style["ticktext"]]
-                                        if style["ticktext"] else None)
+        ticks, texts = style["tickvals"], style["ticktext"]
+        if banded and values is not None:
+            ticks = [sentinel, style["cmin"], 0.5 * (style["cmin"] + style["cmax"]), style["cmax"]]
+            texts = ["not measured"] + [f"{t:.3g}" for t in ticks[1:]]
+        upd["colorbar.tickvals"].append(ticks)
+        upd["colorbar.ticktext"].append([esc(t) for t in texts] if texts else None)
     return upd
 
 

@@ -12,6 +12,7 @@ from ..mesh.laplacian import face_to_vertex_mean
 from ..mesh.surface import Surface
 from . import figures as figs
 from .panels import ReportLayer, ReportPanel
+from .partial_views import covered_layer
 
 
 def colour_fields(surface: Surface) -> tuple[np.ndarray, np.ndarray]:
@@ -77,7 +78,8 @@ def correspondence_layers(source: Surface, target: Surface, corr) -> list[Report
                               description="Log2 area ratio of the mapped triangles, both surfaces "
                                           "scaled to unit area: 0 keeps area, red is stretched, "
                                           "blue compressed."))
-    return layers
+    covered = covered_layer(corr)  # a cropped scan: where both have data
+    return layers if covered is None else [covered, *layers]
 
 
 def correspondence_panel(source_name: str, source: Surface, target_name: str, target: Surface,

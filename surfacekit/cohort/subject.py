@@ -211,6 +211,9 @@ def subject_scalars(subject: Surface, corr, change, fields: dict) -> dict:
                                   if "match_confidence" in fields else None),
         # 1: the shapes barely fix a turn of the map (AmbiguousMatchWarning); check this subject
         "match_turn_ambiguous": int(bool(probe.get("ambiguous"))) if probe else None,
+        # area share of the template that the subject covers: 1 unless the subject is cropped
+        "covered_fraction_of_template": float(change.info.get(
+            "overlap_area_fraction", change.info.get("covered_area_fraction", 1.0))),
     }
 
 

@@ -31,7 +31,7 @@ from .subject import CHANGE_COLUMNS
 SCALAR_COLUMNS = ("n_vertices_input", "n_vertices", "volume_ml", "area_mm2",
                   "volume_change_subject_minus_template_ml",
                   *CHANGE_COLUMNS, "spectral_distance", "mean_match_confidence",
-                  "match_turn_ambiguous")
+                  "match_turn_ambiguous", "covered_fraction_of_template")
 RESULT_COLUMNS = ("subject", "group", "label", "status", "error", *SCALAR_COLUMNS)
 VERTEX_FIELDS = ("normal_displacement", "log_area_ratio")
 SAME = "the same value for every subject tested"
