@@ -146,36 +146,53 @@ def _balanced(faces: np.ndarray) -> bool:
     return bool(np.array_equal(forward, backward))
 
 
-def _close_holes(region: Surface, part: Surface) -> Surface:
-    """The region with every border loop beyond the part's cut count closed by a fan around its
+def _fan(loop: np.ndarray, centre: int, outer: bool) -> np.ndarray:
+    """Triangles closing a boundary loop around the vertex `centre`, oriented to match the faces
+    beside the loop (`outer`: the loop runs as in those faces)."""
+    a, b = (np.roll(loop, -1), loop) if outer else (loop, np.roll(loop, -1))
+    return np.column_stack([a, b, np.full(len(loop), centre)])
+
+
+def _part_cuts(part: Surface) -> tuple[list, list]:
+    """The part's boundary loops split into cuts (near-planar, not small; the longest loop when
+    none is) and small holes."""
+    from ..correspondence.partial import cut_loops
+
+    loops = part.boundary_loops
+    marked = [i for i, lp in enumerate(cut_loops(part)) if lp["cut"]]
+    if not marked:
+        marked = [int(np.argmax([len(lp) for lp in loops]))]
+    return [loops[i] for i in marked], [lp for i, lp in enumerate(loops) if i not in marked]
+
+
+def _close_holes(region: Surface, cut_centres: np.ndarray) -> Surface:
+    """The region with every border loop beyond the cut count closed by a fan around its
     centroid: islands of the covered mask inside the region to fill (the loops farthest from
     the part's cuts)."""
     loops = region.boundary_loops
-    extra = len(loops) - len(part.boundary_loops)
+    extra = len(loops) - len(cut_centres)
     if extra <= 0:
         return region
-    cuts = np.array([part.vertices[lp].mean(axis=0) for lp in part.boundary_loops])
-    far = [float(np.min(np.linalg.norm(cuts - region.vertices[lp].mean(axis=0), axis=1)))
+    far = [float(np.min(np.linalg.norm(cut_centres - region.vertices[lp].mean(axis=0), axis=1)))
            for lp in loops]
     vertices, faces = [region.vertices], [region.faces]
     n = region.n_vertices
     for k in np.argsort(far)[::-1][:extra]:
-        lp = loops[k]
-        vertices.append(region.vertices[lp].mean(axis=0)[None])
-        faces.append(np.column_stack([np.roll(lp, -1), lp, np.full(len(lp), n)]))
+        vertices.append(region.vertices[loops[k]].mean(axis=0)[None])
+        faces.append(_fan(loops[k], n, True))
         n += 1
     return Surface(np.vstack(vertices), np.vstack(faces))
 
 
-def _pair_loops(part: Surface, region: Surface) -> list[tuple[np.ndarray, np.ndarray]]:
+def _pair_loops(cuts: list, part: Surface, region: Surface) -> list[tuple[np.ndarray, np.ndarray]]:
     """Each cut loop of the part with the border loop of the filled region nearest to it."""
-    loops_p, loops_r = part.boundary_loops, region.boundary_loops
-    if len(loops_p) != len(loops_r):
-        raise SurfaceError(f"cannot complete: the cropped surface has {len(loops_p)} boundary "
-                           f"loop(s), the region to fill in has {len(loops_r)}; check the map")
+    loops_r = region.boundary_loops
+    if len(cuts) != len(loops_r):
+        raise SurfaceError(f"cannot complete: the cropped surface has {len(cuts)} cut(s), the "
+                           f"region to fill in has {len(loops_r)} border loop(s); check the map")
     centres = np.array([region.vertices[lp].mean(axis=0) for lp in loops_r])
     pairs, used = [], set()
-    for lp in loops_p:
+    for lp in cuts:
         order = np.argsort(np.linalg.norm(centres - part.vertices[lp].mean(axis=0), axis=1))
         k = next(int(i) for i in order if int(i) not in used)
         used.add(k)
@@ -218,28 +235,32 @@ def complete(partial: Surface, reference: Surface, corr: Correspondence) -> Comp
     if not fill.any():
         raise SurfaceError("the map says the cropped surface covers all of the reference: nothing to fill")
     region, _ids = _region(reference, moved, fill)
-    region = _close_holes(region, partial)
-    cut = np.flatnonzero(partial.connectivity.boundary_vertices)
+    cuts, holes = _part_cuts(partial)
+    region = _close_holes(region, np.array([partial.vertices[lp].mean(axis=0) for lp in cuts]))
+    cut = np.concatenate(cuts)
     shift_cut = partial.vertices[cut] - moved[p2r[cut]]
     border = np.flatnonzero(region.connectivity.boundary_vertices)
     _, nearest = cKDTree(partial.vertices[cut]).query(region.vertices[border])
     filled = region.vertices + _harmonic_fill(region, border, shift_cut[nearest])
-    n = partial.n_vertices
+    n, m = partial.n_vertices, partial.n_vertices + region.n_vertices
     strips = [_strip(a, b[::-1] + n, partial.vertices[a], filled[b[::-1]])[:, ::-1]
-              for a, b in _pair_loops(partial, region)]
-    faces = np.vstack([partial.faces, region.faces + n, *strips])
-    out = Surface(np.vstack([partial.vertices, filled]), faces,
-                  metadata=dict(partial.metadata))
+              for a, b in _pair_loops(cuts, partial, region)]
+    fans = [_fan(lp, m + k, True) for k, lp in enumerate(holes)]  # small holes of the scan
+    faces = np.vstack([partial.faces, region.faces + n, *strips, *fans])
+    out = Surface(np.vstack([partial.vertices, filled,
+                             *[partial.vertices[lp].mean(axis=0)[None] for lp in holes]]),
+                  faces, metadata=dict(partial.metadata))
     if not _balanced(faces):
         raise SurfaceError("cannot complete: stitching the cut did not give a closed, consistently "
                            "oriented surface")
-    centre = np.mean([partial.vertices[lp].mean(axis=0) for lp in partial.boundary_loops], axis=0)
+    centre = np.mean([partial.vertices[lp].mean(axis=0) for lp in cuts], axis=0)
     tri = out.vertices[faces] - centre
     cone = np.einsum("ij,ij->i", tri[:, 0], np.cross(tri[:, 1], tri[:, 2])) / 6.0
     volume = float(cone.sum())
-    is_filled = np.r_[np.zeros(n, dtype=bool), np.ones(region.n_vertices, dtype=bool)]
+    is_filled = np.arange(out.n_vertices) >= n
     from_fill = np.arange(len(faces)) >= len(partial.faces)
     return Completion(out, is_filled, abs(volume), float(cone[from_fill].sum() / volume),
                       float(out.face_areas[from_fill].sum() / out.area),
-                      {"loops_stitched": len(strips), "closed_manifold": bool(out.is_closed),
+                      {"loops_stitched": len(strips), "holes_closed": len(holes),
+                       "closed_manifold": bool(out.is_closed),
                        "mean_fill_shift_mm": float(np.linalg.norm(shift_cut, axis=1).mean())})
