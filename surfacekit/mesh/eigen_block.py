@@ -57,8 +57,7 @@ class BlockProfile:
 def _m_orthonormalise(W: np.ndarray, m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``W = R^T Q`` with the rows of Q M-orthonormal (Cholesky QR, twice; rows are vectors).
 
-    A block whose Gram matrix is numerically singular (the Krylov space became
-    invariant) is replaced by random vectors, with R = 0 for the coupling.
+    Returns ``(None, None)`` when the block's Gram matrix is numerically singular.
     """
     R = np.eye(W.shape[0])
     for _ in range(2):
@@ -121,10 +120,8 @@ class _Basis:
         J = self.J
         W, C = self.orthogonalise(W, J, lo)
         Q, R = _m_orthonormalise(W, self.m)
-        if Q is None:  # invariant subspace found: continue from fresh random directions
-            Q = self.orthogonalise(self.rng.standard_normal(W.shape), J)[0]
-            Q, _ = _m_orthonormalise(Q, self.m)
-            R = np.zeros((W.shape[0], W.shape[0]))
+        if Q is None:  # the block lost rank: left to the caller's fallback (ARPACK)
+            raise BlockSolverNoConvergence("block eigen-solver: a Krylov block lost rank")
         self.B[J:J + len(Q)] = Q
         self.J = J + len(Q)
         return C, R
