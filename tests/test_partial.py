@@ -172,3 +172,14 @@ def test_change_is_measured_on_the_overlap_only(kidney_crop, kidney_match):
     assert abs(summary["area_change_followup_minus_baseline_percent"]) < 3.0
     rows = rep.regional_table(labels=(kidney_crop.source.vertices[:, 0] > 0).astype(int))
     assert all(np.isfinite(r["mean_normal_displacement_outward_mm"]) for r in rows if r["n_vertices"])
+
+
+def test_map_trust_judges_a_partial_map_on_the_overlap(kidney_crop, kidney_match):
+    """Coverage, round trip and distortion of a correct partial map are measured where both
+    scans have data, so they read as a good map, not as a map that misses part of the whole."""
+    from surfacekit.correspondence.evaluation import map_notes, quick_map_quality
+
+    quality = quick_map_quality(kidney_crop.source, kidney_crop.target, kidney_match)
+    verdicts = {n["measure"]: n["verdict"] for n in map_notes(quality, kidney_match.info)}
+    assert verdicts["coverage"] == "good" and verdicts["round-trip error"] == "good"
+    assert verdicts["collapsed area"] != "poor"

@@ -88,19 +88,22 @@ def _frame_coords(p: np.ndarray) -> np.ndarray:
                      np.stack([np.einsum("ij,ij->i", e2, x), np.einsum("ij,ij->i", e2, y)], 1)], 2)
 
 
-def face_distortion(source: Surface, target: Surface,
-                    source_to_target: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def face_distortion(source: Surface, target: Surface, source_to_target: np.ndarray,
+                    areas: tuple[float, float] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Singular values of the piecewise-linear map source -> target on every source face.
 
     Each source triangle is sent to the triangle spanned by the images of its
     corners (both surfaces scaled to unit area, so a change of size is no
     distortion).  Returns ``(sigma (n_faces, 2), weights (n_faces,))``: the singular
     values σ1 >= σ2 of the 2x2 Jacobian in local frames (NaN on degenerate source
-    faces) and each face's share of the source area (0 on degenerate faces).
+    faces) and each face's share of the source area (0 on degenerate faces).  `areas`
+    (source, target) replaces the surfaces' areas in the scaling (a cropped scan: the
+    areas of the region both cover).
     """
     f = source.faces
-    ps = source.vertices[f] / np.sqrt(source.area)
-    pt = target.vertices[np.asarray(source_to_target)[f]] / np.sqrt(target.area)
+    area_s, area_t = (source.area, target.area) if areas is None else areas
+    ps = source.vertices[f] / np.sqrt(area_s)
+    pt = target.vertices[np.asarray(source_to_target)[f]] / np.sqrt(area_t)
     A, B = _frame_coords(ps), _frame_coords(pt)
     ok = np.abs(np.linalg.det(A)) > 1e-14
     J = B[ok] @ np.linalg.inv(A[ok])
@@ -111,15 +114,21 @@ def face_distortion(source: Surface, target: Surface,
     return sigma, weights
 
 
-def distortion(source: Surface, target: Surface, source_to_target: np.ndarray) -> dict:
+def distortion(source: Surface, target: Surface, source_to_target: np.ndarray,
+               faces: np.ndarray | None = None, areas: tuple[float, float] | None = None) -> dict:
     """Area and conformal distortion of the piecewise-linear map source -> target.
 
     From the singular values σ1 >= σ2 of :func:`face_distortion`: area ratio σ1σ2
     and conformal (quasi-conformal) distortion σ1/σ2 (Ahlfors 1966; common
     practice in parameterisation).  Collapsed images (σ2 ~ 0) are counted, not averaged.
+    `faces` (bool, per source face) and `areas` restrict the measures to the region both
+    surfaces cover when one is a cropped scan.
     """
-    sigma, weights = face_distortion(source, target, source_to_target)
+    sigma, weights = face_distortion(source, target, source_to_target, areas)
     ok = np.isfinite(sigma[:, 0])
+    if faces is not None:
+        ok &= faces
+        weights = weights / max(weights[ok].sum(), 1e-300)
     sv, w = sigma[ok], weights[ok]
     collapsed = sv[:, 1] < 1e-6 * np.maximum(sv[:, 0], 1e-300)
     good = ~collapsed
@@ -141,10 +150,14 @@ def map_coverage(source: Surface, target: Surface, corr: Correspondence) -> dict
             f"surfaces have {source.n_vertices}/{target.n_vertices} vertices, the correspondence "
             f"expects {corr.n_source}/{corr.n_target}")
     out = {}
-    for name, surf, hit_by in (("target", target, corr.source_to_target),
-                               ("source", source, corr.target_to_source)):
+    for name, surf, hit_by, over in (("target", target, corr.source_to_target, corr.target_overlap),
+                                     ("source", source, corr.target_to_source, corr.source_overlap)):
         hit = np.zeros(surf.n_vertices, bool)
         hit[hit_by] = True
+        if corr.is_partial:  # a cropped scan: the share of the region both cover
+            out[f"coverage_{name}"] = float(surf.vertex_areas[hit & over].sum()
+                                            / surf.vertex_areas[over].sum())
+            continue
         out[f"coverage_{name}"] = float(surf.vertex_areas[hit].sum() / surf.area)
     return out
 
@@ -206,14 +219,28 @@ def quick_map_quality(source: Surface, target: Surface, corr: Correspondence) ->
     out = map_coverage(source, target, corr)
     s2t, t2s = corr.source_to_target, corr.target_to_source
     rt, rt_mm = [], []
-    for surf, there, back in ((source, s2t, t2s), (target, t2s, s2t)):
+    for surf, there, back, over in ((source, s2t, t2s, corr.source_overlap),
+                                    (target, t2s, s2t, corr.target_overlap)):
         d = np.linalg.norm(surf.vertices[back[there]] - surf.vertices, axis=1)
+        if corr.is_partial:  # a cropped scan: over the region both cover
+            w = surf.vertex_areas * over
+            rt_mm.append(float(w @ d / w.sum()))
+            rt.append(rt_mm[-1] / float(np.sqrt(w.sum())))
+            continue
         rt_mm.append(float(surf.vertex_areas @ d / surf.area))
         rt.append(rt_mm[-1] / float(np.sqrt(surf.area)))
     out["round_trip_mean"] = max(rt)
     out["round_trip_mean_mm"] = max(rt_mm)
     out["source_vertices_per_target_vertex"] = source.n_vertices / target.n_vertices
-    out.update(distortion(source, target, s2t))
+    if corr.is_partial:  # vertices of the region both cover; distortion there
+        out["source_vertices_per_target_vertex"] = (int(corr.source_overlap.sum())
+                                                    / int(corr.target_overlap.sum()))
+        faces = corr.source_overlap[source.faces].all(axis=1)
+        areas = (float(source.face_areas[faces].sum()),
+                 float(target.vertex_areas[corr.target_overlap].sum()))
+        out.update(distortion(source, target, s2t, faces, areas))
+    else:
+        out.update(distortion(source, target, s2t))
     return out
 
 
