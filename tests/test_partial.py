@@ -183,3 +183,20 @@ def test_map_trust_judges_a_partial_map_on_the_overlap(kidney_crop, kidney_match
     verdicts = {n["measure"]: n["verdict"] for n in map_notes(quality, kidney_match.info)}
     assert verdicts["coverage"] == "good" and verdicts["round-trip error"] == "good"
     assert verdicts["collapsed area"] != "poor"
+
+
+def test_a_cut_cap_is_mapped_as_a_part():
+    """An ellipsoid with its cap cut off against a grown whole one: the part's route, and the
+    change summary names the cropped side (the open-surface rule is tested in
+    test_real_surfaces.py with the whole-to-whole route)."""
+    base = sk.synthetic.ellipsoid((40.0, 30.0, 25.0), n=1500)
+    from partialtruth import keep_faces
+
+    cut, _ = keep_faces(base, base.vertices[base.faces].mean(axis=1)[:, 2] < 18.0)
+    follow = sk.synthetic.ellipsoid((42.0, 31.0, 26.0), n=1500, seed=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", sk.AmbiguousMatchWarning)
+        result = sk.compare(cut, follow)
+    assert result.correspondence.info["route"] == "partial"
+    assert result.correspondence.source_overlap.all()  # every vertex of the part has a partner
+    assert any(w.startswith("the baseline covers only part") for w in result.warnings)
