@@ -54,6 +54,38 @@ def match_check(energy: float, values_s: np.ndarray, values_t: np.ndarray) -> di
             "low_confidence": low, "note": note}
 
 
+#: Partial route (a cropped part mapped into a whole): trimmed RMS point-to-plane misfit of the
+#: deformed part (in RMS radii of the whole) at or above which the part fits nowhere on the
+#: whole.  Measured at 3000/3600 vertices: 0.0009-0.0249 on the 24 cropped benchmark pairs
+#: (scanner noise raises it most), 0.007-0.106 when a crop of one organ kind is placed on a
+#: whole of another.
+PARTIAL_MISFIT = 0.035
+#: ... and the area ratio part / whole outside which the part cannot be a part of the whole:
+#: 0.51-2.35 on the benchmark crops (10-50% cut away; scanner noise inflates the area), 0.01-42
+#: between organ kinds.  Below a fifth of the whole's area, too little is left to place it.
+PARTIAL_AREA = (0.2, 3.0)
+
+
+def partial_check(misfit: float, area_ratio: float) -> dict:
+    """The no-match verdict of a part mapped into a whole, JSON-able (keys as :func:`match_check`'s,
+    with ``misfit`` and ``area_ratio`` instead of ``energy`` and ``spectrum_distance``)."""
+    lo, hi = PARTIAL_AREA
+    ratios = {"misfit": misfit / PARTIAL_MISFIT,
+              "area ratio": max(area_ratio / hi, lo / max(area_ratio, 1e-300))}
+    score = max(ratios.values())
+    low = bool(score >= 1.0)
+    worst = max(ratios, key=ratios.get)
+    note = (f"the part does not look like a part of the whole surface (its {worst} is "
+            f"{ratios[worst]:.1f} times the level allowed for a cropped copy of one organ): the map is "
+            "unlikely to mean anything; check that the right pair of surfaces was given"
+            if low else "the part looks like a cropped copy of the whole, deformed")
+    rule = (f"poor >= 1: the larger of the deformed part's misfit / {PARTIAL_MISFIT:g} of the whole's "
+            f"RMS radius and how far its area ratio to the whole lies outside {lo:g}-{hi:g}; cropped "
+            "copies of one organ stay below 0.75 (benchmarks/bench_partial.py)")
+    return {"misfit": float(misfit), "area_ratio": float(area_ratio), "score": float(score),
+            "low_confidence": low, "note": note, "rule": rule}
+
+
 def warn_no_match(check: dict) -> None:
     """Issue the NoMatchWarning that a low-confidence check calls for (stack level of match's caller)."""
     if check["low_confidence"]:

@@ -30,7 +30,8 @@ from ..mesh.eigen import eigenbasis
 from ..mesh.surface import Surface
 from . import tuning
 from .ambiguity import AmbiguousMatchWarning
-from .partial_fit import covered_by, deform_part, place_part, rerank, rms_radius
+from .mismatch import partial_check
+from .partial_fit import covered_by, fit_misfit, place_part, rerank, rms_radius
 from .partial_fmap import overlap_fmap, slanted_slope, soft_indicator
 
 #: a boundary loop is a cut when its RMS distance from its best-fitting plane is below this
@@ -44,6 +45,10 @@ LOOP_SIZE = 0.15
 #: measured 1.03 for a flipped cropped ventricle, 1.13-1.9 for correctly placed kidney and
 #: liver crops (the whole-to-whole solver's RIVAL_WITHIN is 1.05)
 RIVAL_WITHIN = 1.05
+#: ... and, for poses compared after the smooth deformation (:func:`~.partial_fit.rerank`),
+#: within this factor: measured 1.14 for a cropped ventricle under anisotropic growth whose
+#: flipped pose fits almost as well, 1.35 and more for the kidney, liver and hippocampus crops
+RIVAL_DEFORMED_WITHIN = 1.25
 MODES = ("auto", "yes", "no")
 
 
@@ -128,7 +133,8 @@ def match_partial(source: Surface, target: Surface, opts, seed: int, found: dict
     pairs = np.asarray(opts.landmarks, dtype=np.int64).reshape(-1, 2)
     placed = place_part(part, whole, seed, opts, pairs if part_is_source else pairs[:, ::-1])
     placed = rerank(part, placed, opts, seed)
-    moved = deform_part(part, placed, opts, seed)
+    misfit, moved = (placed["misfit"], placed["moved"]) if "moved" in placed else \
+        fit_misfit(part, placed, opts, seed)
     W, r = placed["W"], placed["radius"]
     _, p2w = placed["tree"].query(moved)
     covered, w2p = covered_by(part, moved, W)
@@ -154,20 +160,24 @@ def match_partial(source: Surface, target: Surface, opts, seed: int, found: dict
             "confidence": conf_t, "source_confidence": conf_s, "rigid": rigid,
             "similarity": rigid, "source_overlap": ov_s, "target_overlap": ov_t,
             "info": {"route": "partial", "partial": info,
-                     "rotation_ambiguity": _ambiguity(placed["rival"], len(pairs))}}
+                     "match_check": partial_check(misfit, found["area_ratio"]),
+                     "rotation_ambiguity": _ambiguity(placed["rival"], len(pairs),
+                                                      placed.get("reranked", False))}}
 
 
-def _ambiguity(rival: dict | None, n_landmarks: int) -> dict | None:
+def _ambiguity(rival: dict | None, n_landmarks: int, deformed: bool = False) -> dict | None:
     """The turn verdict of the partial route (keys as the whole-to-whole probe's), with an
     :class:`AmbiguousMatchWarning` when a pose turned by more than RIVAL_ANGLE_DEG fits
-    within RIVAL_WITHIN of the chosen one; None with three or more landmark pairs."""
+    within RIVAL_WITHIN of the chosen one (RIVAL_DEFORMED_WITHIN when the poses were compared
+    after the smooth deformation); None with three or more landmark pairs."""
     if n_landmarks >= 3:
         return None
-    flip = rival is not None and rival["energy_ratio"] < RIVAL_WITHIN
+    within = RIVAL_DEFORMED_WITHIN if deformed else RIVAL_WITHIN
+    flip = rival is not None and rival["energy_ratio"] < within
     if flip:
         warnings.warn(
             f"a placement of the part turned by {rival['angle_deg']:.0f} degrees fits almost as "
-            f"well (misfit ratio {rival['energy_ratio']:.3f}, below {RIVAL_WITHIN}): the map may "
+            f"well (misfit ratio {rival['energy_ratio']:.3f}, below {within}): the map may "
             "be turned; give three landmark pairs (MatchOptions.landmarks, or --landmarks on the "
             "command line) to fix it", AmbiguousMatchWarning, stacklevel=4)
     return {"ambiguous": bool(flip), "flip": bool(flip), "rival": rival, "axis": 0,

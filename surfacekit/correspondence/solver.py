@@ -167,7 +167,9 @@ def match(source: Surface, target: Surface, options: MatchOptions | None = None,
             fields = match_partial(source, target, opts, seed, found)
         clock.lap("partial")
         fields["info"].update(timings_s=clock.timings, options=opts.to_dict(), seed=int(seed))
-        return Correspondence(**fields, options=opts, seed=int(seed))
+        warn_no_match(fields["info"]["match_check"])
+        return Correspondence(**fields, options=opts, seed=int(seed),
+                              low_confidence=fields["info"]["match_check"]["low_confidence"])
     with threadpool_limits(1, user_api="blas"):  # small matrices: threads only add contention
         src, tgt = prepare_shape(source, opts, seed, 0), prepare_shape(target, opts, seed + 1, 1)
         clock.lap("prepare")
