@@ -100,7 +100,7 @@ def run(n: int = 3000, seeds: int = 1) -> None:
         if corr.low_confidence:
             line += "  [low confidence]"
         rows.append((p.name, err, overlap, still, volume, seconds, bool(amb.get("ambiguous")),
-                     corr.low_confidence))
+                     corr.low_confidence, corr.info["match_check"]["score"]))
         print(line, flush=True)
     summarise(rows, flagged, n)
     other_organs(n)
@@ -141,7 +141,8 @@ def summarise(rows, flagged, n: int) -> None:
           f"{clear.max() if len(clear) else float('nan'):.4f}")
     for name, e0, e1 in flagged:
         print(f"  flagged {name:40s} without landmarks {e0:.4f}   with 3 landmark pairs {e1:.4f}")
-    print(f"pairs flagged low-confidence (sk.NoMatchWarning): {len(low)} {low or ''}")
+    print(f"pairs flagged low-confidence (sk.NoMatchWarning): {len(low)} {low or ''}(no-match score "
+          f"{min(r[8] for r in rows):.2f}-{max(r[8] for r in rows):.2f}, flagged from 1)")
     print(f"IoU of source_overlap with the true covered region: mean {ious.mean():.3f}, worst "
           f"{ious.min():.3f} (goal >= 0.90, aim 0.95)")
     if len(still):
