@@ -22,7 +22,7 @@ import platform
 import re
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -274,7 +274,7 @@ def write_report(path, *, title: str, panels: Sequence[ReportPanel] = (),
                      f"<figcaption>{esc(caption)}</figcaption></figure>")
         page.add("</div></section>")
     prov = dict(provenance or {})
-    prov.setdefault("created", datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC"))
+    prov.setdefault("created", datetime.now(UTC).strftime("%Y-%m-%d %H:%M:%S UTC"))
     page.add(f"<section><h2>{esc(page.title('Provenance'))}</h2>")
     for key, value in prov.items():
         if isinstance(value, dict) or (isinstance(value, list) and value and isinstance(value[0], dict)):

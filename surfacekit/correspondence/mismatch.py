@@ -16,7 +16,7 @@ from . import tuning
 
 
 class NoMatchWarning(UserWarning):
-    """The two surfaces do not look like the same organ: the map is unlikely to mean anything."""
+    """The two surfaces differ more than deformed copies of the same organ do: the map may mean little."""
 
 
 def spectrum_gap(values_s: np.ndarray, values_t: np.ndarray) -> float:
@@ -46,9 +46,9 @@ def match_check(energy: float, values_s: np.ndarray, values_t: np.ndarray) -> di
     score = max(ratios.values())
     low = bool(score >= 1.0)
     worst = max(ratios, key=ratios.get)
-    note = (f"the surfaces do not look like the same organ (map {worst} {ratios[worst]:.1f} times "
-            "the level allowed between deformed copies of one organ): the map is unlikely to mean "
-            "anything; check that the right pair of surfaces was given"
+    note = (f"the surfaces differ more than two deformed copies of the same organ do (map {worst} "
+            f"{ratios[worst]:.1f} times the level allowed between them): the map may mean little; "
+            "check that the right pair of surfaces was given"
             if low else "the surfaces look like the same organ, deformed")
     return {"energy": float(energy), "spectrum_distance": spec, "score": float(score),
             "low_confidence": low, "note": note}
@@ -76,8 +76,8 @@ def partial_check(misfit: float, area_ratio: float) -> dict:
     low = bool(score >= 1.0)
     worst = max(ratios, key=ratios.get)
     note = (f"the part does not look like a part of the whole surface (its {worst} is "
-            f"{ratios[worst]:.1f} times the level allowed for a cropped copy of one organ): the map is "
-            "unlikely to mean anything; check that the right pair of surfaces was given"
+            f"{ratios[worst]:.1f} times the level allowed for a cropped copy of one organ): the map may "
+            "mean little; check that the right pair of surfaces was given"
             if low else "the part looks like a cropped copy of the whole, deformed")
     rule = (f"poor >= 1: the larger of the deformed part's misfit / {PARTIAL_MISFIT:g} of the whole's "
             f"RMS radius and how far its area ratio to the whole lies outside {lo:g}-{hi:g}; cropped "

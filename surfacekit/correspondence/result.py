@@ -129,8 +129,8 @@ class Correspondence:
     target_overlap : (n_target,) bool
         The same over the target's vertices (False beyond a cropped source).
     low_confidence : bool
-        True when the two surfaces do not look like the same organ (a kidney matched
-        against a liver, say): the map is unlikely to mean anything.  Set by ``sk.match``
+        True when the two surfaces differ more than deformed copies of the same organ do
+        (a kidney matched against a liver, say): the map may mean little.  Set by ``sk.match``
         from measured quantities (``info["match_check"]``, see
         :func:`surfacekit.correspondence.mismatch.match_check`), which also issues a
         :class:`~surfacekit.correspondence.mismatch.NoMatchWarning`; False in files
