@@ -12,7 +12,6 @@ import tracemalloc
 
 import numpy as np
 import pytest
-import scipy.sparse.linalg as spla
 from groundtruth import make_pair
 
 import surfacekit as sk
@@ -77,9 +76,12 @@ def test_measure_change_reuses_what_match_left(monkeypatch):
         original_init(self, *args, **kwargs)
 
     monkeypatch.setattr(Connectivity, "__init__", counting_init)
-    factorized = spla.factorized
+    from surfacekit.analysis import geometry
+
+    factorise = geometry.cholesky_solver
     factorisations = []
-    monkeypatch.setattr(spla, "factorized", lambda A: factorisations.append(1) or factorized(A))
+    monkeypatch.setattr(geometry, "cholesky_solver",
+                        lambda A: factorisations.append(1) or factorise(A))
     rep = sk.measure_change(base, follow, corr)
     assert calls == {}, f"measure_change recomputed what the correspondence or surfaces carry: {calls}"
     assert not built, "measure_change rebuilt the mesh connectivity"

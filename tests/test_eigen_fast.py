@@ -13,13 +13,14 @@ import surfacekit as sk
 from surfacekit.mesh import eigen
 from surfacekit.mesh.eigen import eigen_shift
 from surfacekit.mesh.eigen_block import BlockSolverNoConvergence, block_eigensolve
+from surfacekit.mesh.linsolve import cholesky_solver
 
 TOL = 1e-6
 
 
 def block_solve(L, M, k, **kw):
     sigma = eigen_shift(L, M)
-    solve = eigen._cholesky_solve((L - sigma * M).tocsc())
+    solve = cholesky_solver((L - sigma * M).tocsc())
     return block_eigensolve(L, M.diagonal(), k, sigma, solve, **kw)
 
 

@@ -27,12 +27,12 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.linalg
 import scipy.sparse as sp
-from cholespy import CholeskySolverD, MatrixType
 from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist
 
 from ..correspondence.result import Correspondence
 from ..correspondence.synchronise import barycentric_coordinates
+from ..mesh.linsolve import cholesky_solver
 from ..mesh.proximity import closest_on_faces, near_faces
 from ..mesh.sampling import farthest_points
 from ..mesh.surface import Surface, SurfaceError
@@ -111,11 +111,9 @@ class SurfaceWarp:
         # the coo output keeps zero distances, so the diagonal φ(0) = 1 is there
         # symmetric positive definite and sparse: one CHOLMOD factorisation (cholespy) for the
         # three components
-        solver = CholeskySolverD(len(self.fixed), a.row.astype(np.int32), a.col.astype(np.int32),
-                                 _wendland(a.data, self.radius), MatrixType.COO)
-        out = np.empty_like(residual)
-        solver.solve(np.ascontiguousarray(residual), out)
-        return out
+        n = len(self.fixed)
+        A = sp.coo_matrix((_wendland(a.data, self.radius), (a.row, a.col)), shape=(n, n))
+        return cholesky_solver(A)(residual)
 
     def _spline(self, points: np.ndarray) -> np.ndarray:
         out = np.empty((len(points), 3))

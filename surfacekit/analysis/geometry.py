@@ -2,9 +2,9 @@
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse.linalg as spla
 
 from ..mesh.laplacian import laplacian
+from ..mesh.linsolve import cholesky_solver
 from ..mesh.surface import Surface
 
 
@@ -21,10 +21,11 @@ def heat_smooth(s: Surface, values: np.ndarray, sigma: float) -> np.ndarray:
     key = ("analysis-heat-smooth", float(sigma))
     solve = s.cache.get(key)
     if solve is None:
-        solve = spla.factorized((M + 0.5 * sigma**2 * L).tocsc())
+        # symmetric positive definite: one sparse Cholesky factorisation
+        solve = cholesky_solver((M + 0.5 * sigma**2 * L).tocsc())
         s.cache[key] = solve
     f = np.asarray(values, dtype=np.float64)
     mass = M.diagonal()
     if f.ndim == 1:
         return solve(mass * f)
-    return np.column_stack([solve(mass * f[:, j]) for j in range(f.shape[1])])
+    return solve(mass[:, None] * f)

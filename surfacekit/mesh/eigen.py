@@ -13,11 +13,11 @@ import numpy as np
 import scipy.linalg
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
-from cholespy import CholeskySolverD, MatrixType
 from threadpoolctl import threadpool_limits
 
 from .eigen_block import BlockSolverNoConvergence, block_eigensolve
 from .laplacian import laplacian, laplacian_method
+from .linsolve import cholesky_solver
 from .surface import Surface, SurfaceError
 
 #: smallest vertex count and number of eigenpairs for which ``solver="auto"`` uses the
@@ -108,23 +108,6 @@ def eigen_shift(L: sp.spmatrix, M: sp.spmatrix, cap: float = 1e-3) -> float:
     return -max(min(1e-6 * mean_ratio, cap * weyl_scale), 1e-300)
 
 
-def _cholesky_solve(A: sp.spmatrix):
-    """A function solving ``A x = b`` for SPD A with a CHOLMOD factorisation (cholespy)."""
-    C = sp.coo_matrix(A)
-    chol = CholeskySolverD(
-        A.shape[0], C.row.astype(np.int32), C.col.astype(np.int32), C.data.astype(np.float64),
-        MatrixType.COO
-    )
-
-    def solve(b):
-        b = np.ascontiguousarray(b, dtype=np.float64)
-        x = np.empty_like(b)
-        chol.solve(b, x)
-        return x
-
-    return solve
-
-
 def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
                      ) -> tuple[np.ndarray, np.ndarray, str]:
     """One eigen-solve: the k smallest ``(values (k,), vectors (n, k), solver used)`` of
@@ -145,7 +128,7 @@ def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
     large = n >= BLOCK_MIN_VERTICES and k >= BLOCK_MIN_K
     if solver == "block" or (solver == "auto" and large):
         sigma = eigen_shift(L, M)
-        solve = _cholesky_solve((L - sigma * M).tocsc())
+        solve = cholesky_solver((L - sigma * M).tocsc())
         try:
             # one BLAS thread: the block products are memory-bound, and two threads
             # on a loaded 2-core machine made them 10x slower (bench_eigenbasis.py)
@@ -163,7 +146,7 @@ def solve_eigenbasis(L: sp.spmatrix, M: sp.spmatrix, k: int, solver: str
         if solver == "arpack-lu":
             solve, name = spla.splu(A).solve, "arpack+superlu"
         else:
-            solve, name = _cholesky_solve(A), "arpack+cholmod"
+            solve, name = cholesky_solver(A), "arpack+cholmod"
         try:
             return _arpack_cholmod(L, M, k, sigma, solve) + (name,)
         except spla.ArpackNoConvergence:
