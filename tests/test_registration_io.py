@@ -86,8 +86,9 @@ def test_world_frame_is_ras(ball_files):
         assert np.allclose(ImageGrid.of(path).affine, _ras_affine(g), atol=1e-12)
 
 
-def test_missing_extra_is_one_line(ball_files, monkeypatch):
-    _, paths, _ = ball_files
+@pytest.fixture
+def without_simpleitk(monkeypatch):
+    """Imports of SimpleITK fail, as on an install without the itk extra."""
     real_import = builtins.__import__
 
     def no_sitk(name, *args, **kwargs):
@@ -96,6 +97,10 @@ def test_missing_extra_is_one_line(ball_files, monkeypatch):
         return real_import(name, *args, **kwargs)
 
     monkeypatch.setattr(builtins, "__import__", no_sitk)
+
+
+def test_missing_extra_is_one_line(ball_files, without_simpleitk):
+    _, paths, _ = ball_files
     with pytest.raises(SurfaceError) as err:
         sk.from_segmentation(paths[".nrrd"], 3)
     message = str(err.value)
@@ -186,19 +191,11 @@ def test_bad_kind_format_and_missing_pose_are_one_line(tmp_path):
         sk.apply_transform(sk.synthetic.icosphere(1), tmp_path / "missing.tfm")
 
 
-def test_prepare_command_without_the_extra(ball_files, tmp_path, monkeypatch, capsys):
+def test_prepare_command_without_the_extra(ball_files, tmp_path, without_simpleitk, capsys):
     """`surfacekit prepare x.nrrd` without SimpleITK: exit 2, one line naming the extra."""
     from surfacekit.app import cli
 
     _, paths, _ = ball_files
-    real_import = builtins.__import__
-
-    def no_sitk(name, *args, **kwargs):
-        if name == "SimpleITK":
-            raise ImportError("No module named 'SimpleITK'")
-        return real_import(name, *args, **kwargs)
-
-    monkeypatch.setattr(builtins, "__import__", no_sitk)
     code = cli.main(["prepare", str(paths[".nrrd"]), "--label", "3", "-o", str(tmp_path / "o.ply")])
     err = capsys.readouterr().err
     assert code == 2

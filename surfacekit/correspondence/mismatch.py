@@ -43,15 +43,23 @@ def match_check(energy: float, values_s: np.ndarray, values_t: np.ndarray) -> di
     spec = spectrum_gap(values_s, values_t)
     ratios = {"energy": float(energy) / tuning.MISMATCH_ENERGY,
               "spectrum distance": spec / tuning.MISMATCH_SPECTRUM}
+    verdict = _verdict(ratios, "the surfaces differ more than two deformed copies of the same organ "
+                               "do (map {worst} {ratio:.1f} times the level allowed between them)",
+                       "the surfaces look like the same organ, deformed")
+    return {"energy": float(energy), "spectrum_distance": spec, **verdict}
+
+
+def _verdict(ratios: dict, low_note: str, ok_note: str) -> dict:
+    """``score`` (the largest ratio of a measure to its threshold), ``low_confidence``
+    (score >= 1) and the plain ``note``: `low_note` formatted with the worst measure
+    and its ratio, plus what to do, or `ok_note`."""
     score = max(ratios.values())
     low = bool(score >= 1.0)
     worst = max(ratios, key=ratios.get)
-    note = (f"the surfaces differ more than two deformed copies of the same organ do (map {worst} "
-            f"{ratios[worst]:.1f} times the level allowed between them): the map may mean little; "
-            "check that the right pair of surfaces was given"
-            if low else "the surfaces look like the same organ, deformed")
-    return {"energy": float(energy), "spectrum_distance": spec, "score": float(score),
-            "low_confidence": low, "note": note}
+    note = (low_note.format(worst=worst, ratio=ratios[worst])
+            + ": the map may mean little; check that the right pair of surfaces was given"
+            if low else ok_note)
+    return {"score": float(score), "low_confidence": low, "note": note}
 
 
 #: Partial route (a cropped part mapped into a whole): trimmed RMS point-to-plane misfit of the
@@ -72,18 +80,14 @@ def partial_check(misfit: float, area_ratio: float) -> dict:
     lo, hi = PARTIAL_AREA
     ratios = {"misfit": misfit / PARTIAL_MISFIT,
               "area ratio": max(area_ratio / hi, lo / max(area_ratio, 1e-300))}
-    score = max(ratios.values())
-    low = bool(score >= 1.0)
-    worst = max(ratios, key=ratios.get)
-    note = (f"the part does not look like a part of the whole surface (its {worst} is "
-            f"{ratios[worst]:.1f} times the level allowed for a cropped copy of one organ): the map may "
-            "mean little; check that the right pair of surfaces was given"
-            if low else "the part looks like a cropped copy of the whole, deformed")
+    verdict = _verdict(ratios, "the part does not look like a part of the whole surface (its "
+                               "{worst} is {ratio:.1f} times the level allowed for a cropped copy "
+                               "of one organ)",
+                       "the part looks like a cropped copy of the whole, deformed")
     rule = (f"poor >= 1: the larger of the deformed part's misfit / {PARTIAL_MISFIT:g} of the whole's "
             f"RMS radius and how far its area ratio to the whole lies outside {lo:g}-{hi:g}; cropped "
             "copies of one organ stay below 0.75 (benchmarks/bench_partial.py)")
-    return {"misfit": float(misfit), "area_ratio": float(area_ratio), "score": float(score),
-            "low_confidence": low, "note": note, "rule": rule}
+    return {"misfit": float(misfit), "area_ratio": float(area_ratio), **verdict, "rule": rule}
 
 
 def warn_no_match(check: dict) -> None:

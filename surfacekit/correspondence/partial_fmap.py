@@ -29,26 +29,15 @@ def overlap_fmap(phi_t: np.ndarray, mass_t: np.ndarray, phi_s: np.ndarray, t2s: 
     return phi_t.T @ (w[:, None] * phi_s[t2s])
 
 
-def weyl_boundary_term(boundary_length: float, whole_area: float) -> float:
-    """Coefficient b of the boundary term in the row of the slanted diagonal, ``i ≈ r j + b √j``.
-
-    Weyl's law with its second term for a free (Neumann) boundary counts
-    ``N(λ) ≈ A λ / 4π + L √λ / 4π`` eigenvalues below λ on a surface of area A with
-    boundary length L (Ivrii, Funct. Anal. Appl. 1980); the whole (closed) reaches
-    column j at ``λ ≈ 4π j / A_whole``, so the part's row there is
-    ``r j + L √j / (2 √(π A_whole))``.
-    """
-    return float(boundary_length / (2.0 * np.sqrt(np.pi * whole_area)))
-
-
-def slanted_slope(C: np.ndarray, skip: int = 1, boundary: float | None = None) -> float:
+def slanted_slope(C: np.ndarray, skip: int = 1) -> float:
     """Slope of the slanted diagonal of a part-by-whole functional map (rows: the part).
 
     For each column j (the whole's eigenfunction j) the energy-weighted mean row
     ``ī_j = Σ_i i C_ij² / Σ_i C_ij²``; the slope r is fitted by weighted least squares
-    (each column weighted by its energy) to ``ī_j = r j + b √j``: Weyl's law with its
-    boundary term (:func:`weyl_boundary_term`) puts the part's row there.  b is fitted
-    too unless given (``boundary=0`` fits the plain line ``ī = r j``).  The first
+    (each column weighted by its energy) to ``ī_j = r j + b √j``, b fitted too: Weyl's
+    law with its second term for a free (Neumann) boundary counts ``N(λ) ≈ A λ / 4π +
+    L √λ / 4π`` eigenvalues below λ on a surface of area A with boundary length L
+    (Ivrii, Funct. Anal. Appl. 1980), which puts the part's row there.  The first
     `skip` rows and columns (the near-constant functions) are left out.  About the
     area ratio part / whole for a correct map (Rodolà et al. 2017, §4).
     """
@@ -58,32 +47,8 @@ def slanted_slope(C: np.ndarray, skip: int = 1, boundary: float | None = None) -
     energy = A.sum(axis=0)
     mean_row = rows @ A / np.maximum(energy, 1e-300)
     sw = np.sqrt(energy)
-    if boundary is None:
-        X = np.stack([cols, np.sqrt(cols)], axis=1) * sw[:, None]
-        return float(np.linalg.lstsq(X, mean_row * sw, rcond=None)[0][0])
-    y = mean_row - boundary * np.sqrt(cols)
-    return float(np.sum(energy * y * cols) / max(np.sum(energy * cols**2), 1e-300))
-
-
-def slanted_weights(k_rows: int, k_cols: int, slope: float) -> np.ndarray:
-    """Penalty (k_rows, k_cols) growing with the distance of entry (i, j) from the line
-    ``i = slope · j``, in the spirit of the slanted-diagonal prior of Rodolà et al. 2017
-    (eq. 9 there): the row distance ``|i - slope · j|``, so one row off the line costs 1."""
-    i, j = np.meshgrid(np.arange(k_rows), np.arange(k_cols), indexing="ij")
-    return np.abs(i - slope * j)
-
-
-def slanted_fmap(C: np.ndarray, slope: float, strength: float = 0.05) -> np.ndarray:
-    """A part-by-whole functional map pulled towards its slanted diagonal.
-
-    Minimises ``‖C' - C‖² + strength ‖W ∘ C'‖²`` with W :func:`slanted_weights`; since
-    the first term is the least-squares fit to the point map in M-orthonormal bases, the
-    minimiser is ``C'_ij = C_ij / (1 + strength W_ij²)``: entries far from the slanted
-    line, which a map from a part cannot produce, are damped (a closed-form variant of
-    the regularised energy of Rodolà et al. 2017, with the map fixed).
-    """
-    W = slanted_weights(C.shape[0], C.shape[1], slope)
-    return C / (1.0 + strength * W**2)
+    X = np.stack([cols, np.sqrt(cols)], axis=1) * sw[:, None]
+    return float(np.linalg.lstsq(X, mean_row * sw, rcond=None)[0][0])
 
 
 def soft_indicator(C_part_by_whole: np.ndarray, phi_part: np.ndarray, mass_part: np.ndarray,
