@@ -44,8 +44,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ..mesh.proximity import closest_on_faces, near_faces, nearest_corner
+from ..mesh.proximity import nearest_corner, ring_faces
 from ..mesh.surface import Surface
+from .closest import closest_near
 from .result import Correspondence
 
 
@@ -102,9 +103,8 @@ def locate(points: np.ndarray, target: Surface, seeds: np.ndarray,
     """Project points (n, 3) onto `target` near the seed vertices (n,): the closest point on
     the faces touching the `rings`-ring of each seed (Ericson, *Real-Time Collision
     Detection*, 2005, §5.1.5), as a :class:`PointMap`."""
-    pairs = near_faces(target, np.asarray(seeds, dtype=np.int64), rings)
-    foot, face = closest_on_faces(np.asarray(points, dtype=np.float64), target.vertices,
-                                  target.faces, pairs)
+    foot, face = closest_near(points, target.vertices, target.faces, ring_faces(target, rings),
+                              seeds, target.connectivity.vertex_adjacency(self_loops=True))
     bary = barycentric_coordinates(foot, target.vertices[target.faces[face]])
     return PointMap(face=face, barycentric=bary)
 
